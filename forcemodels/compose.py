@@ -71,12 +71,7 @@ import numpy as np
 from numba import njit
 from forcemodels.environment import ENV_ROT, ENV_SUN, ENV_MOON, ENV_SIZE, FLAG_ROTATION, FLAG_SUN, FLAG_MOON
 from propagator.rotation_table import gcrf_to_itrf_nb as _rotation_nb
-try:  # TEMPORARY while the module is being written: remove the fallback once it exists
-    from forcemodels.ephemeris import sun_moon_nb as _sun_moon_nb
-except ImportError:
-    @njit
-    def _sun_moon_nb(t, table, sun, moon):
-        raise RuntimeError("forcemodels.ephemeris.sun_moon_nb is not available yet")
+from forcemodels.ephemeris import sun_moon_nb as _sun_moon_nb
 '''
 
 _ENV_FILL = '''

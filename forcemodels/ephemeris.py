@@ -1,0 +1,372 @@
+"""Geocentric Sun and Moon positions for force models: DE421 Chebyshev tables + numba.
+
+Source data: JPL DE421 (Folkner, Williams & Boggs 2009, IPN Progress Report 42-178) as
+shipped by the ``de421`` PyPI package: ``.npy`` arrays of Chebyshev coefficients in km,
+argument TDB Julian days, one coefficient set per sub-interval (the layout read by
+``jplephem.ephem.Ephemeris``):
+
+* ``jpl-sun.npy``       (6852, 3, 11): Sun w.r.t. the solar-system barycentre, 16-day sets
+* ``jpl-earthmoon.npy`` (6852, 3, 13): Earth-Moon barycentre (EMB) w.r.t. the SSB, 16 days
+* ``jpl-moon.npy``      (27408, 3, 13): Moon w.r.t. the Earth (geocentric), 4-day sets
+* ``constants.npy``: EMRAT, AU, jalpha/jomega (first/last JD).  The packaged coefficients
+  span JD 2414992.5 .. 2524624.5 (1899-12-04 .. 2200-02-01, TDB), read from the file.
+
+Set i of a body covers [jalpha + i*span, jalpha + (i+1)*span] with span =
+(jomega - jalpha)/n_sets; the Chebyshev argument is x = 2*offset/span - 1.
+
+Geocentric positions (DE421 axes are the ICRF; GCRF is the geocentric frame with the
+same axes, so no rotation is applied; the BCRS->GCRS relativistic coordinate
+transformation changes positions at the (v/c)^2 ~ 1e-8 relative level and is neglected,
+common practice for force models).  Positions are geometric (no light time, no
+aberration), as a force model needs:
+
+    Earth = EMB - Moon_geo / (1 + EMRAT)
+    Sun_geo = Sun_ssb - Earth = Sun_ssb - EMB + Moon_geo / (1 + EMRAT)
+
+Time: the table stores the case epoch (TT, two-part JD) and the evaluator takes
+t = seconds since the epoch in TT.  The ephemeris argument is TDB = TT + (TDB - TT).
+TDB - TT (< 2 ms) comes from ``erfa.dtdb`` (the Fairhead & Bretagnon 1990 series as
+implemented in SOFA/ERFA, geocentre: topocentric terms zero), evaluated at table-build
+time on the Chebyshev nodes of each 16-day set and stored as a Chebyshev series of
+``TDB_TT_NCOEF`` coefficients with argument TT.  Interpolation error < 1 ns
+(tests/test_ephemeris.py), i.e. < 0.03 mm in the geocentric Sun (Earth orbital speed
+30 km/s).  (erfa.dtdb's argument is formally TDB; using TT changes the result by
+< 1e-12 s.)
+
+Outside DE421's span the table falls back to the low-precision analytic series of
+:mod:`forcemodels.analytic_ephemeris`, with a logged warning and ``source`` = analytic in
+the header; beyond the analytic series' validity the table builder raises ValueError.
+
+Table layout (flat float64; header slots are the ``H_*`` constants below)::
+
+    [header (HEADER_SIZE)] [Sun sets] [EMB sets] [Moon sets] [TDB-TT sets]
+
+each body's sets as (n_sets, 3, n_coef) C-order, coefficients in metres; the TDB-TT sets
+as (n_sets, n_coef) in seconds, argument TT days.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+from numba import njit
+
+from forcemodels.analytic_ephemeris import (ANALYTIC_VALID_CENTURIES, moon_position_analytic_nb,
+                                            sun_position_analytic_nb)
+from propagator.constants import DAYS_PER_JULIAN_CENTURY, J2000_JD, SECONDS_PER_DAY
+
+log = logging.getLogger(__name__)
+
+# ---- table header layout -----------------------------------------------------------
+TABLE_MAGIC = 421.20250102
+"""Value of table[H_MAGIC]: identifies a Sun/Moon table (format version in the decimals)."""
+H_MAGIC = 0
+H_SOURCE = 1          # SOURCE_DE421 or SOURCE_ANALYTIC
+H_EPOCH_JD1 = 2       # case epoch, TT Julian date, part 1 [d]
+H_EPOCH_JD2 = 3       # part 2 [d]
+H_E0_DAYS = 4         # epoch TT JD minus JD of the first stored set [d]
+H_T0_CENT = 5         # epoch, Julian centuries TT since J2000.0
+H_EARTH_SHARE = 6     # 1 / (1 + EMRAT)
+H_T_MIN = 7           # covered span, seconds since epoch (TT)
+H_T_MAX = 8
+H_START_JD = 9        # TDB JD of the first stored set (information)
+H_BODY = 10           # per series b (BODY_SUN, BODY_EMB, BODY_MOON, SERIES_TDB_TT): 4 slots at H_BODY + 4 b
+B_NSETS, B_NCOEF, B_SPAN_DAYS, B_OFFSET = 0, 1, 2, 3
+HEADER_SIZE = H_BODY + 16
+
+SOURCE_DE421 = 0.0
+SOURCE_ANALYTIC = 1.0
+BODY_SUN, BODY_EMB, BODY_MOON, SERIES_TDB_TT = 0, 1, 2, 3
+_BODY_FILES = ("sun", "earthmoon", "moon")
+TDB_TT_NCOEF = 10
+"""Chebyshev coefficients per 16-day set for TDB - TT (our choice; error < 1 ns)."""
+
+DEFAULT_MARGIN_S = 2.0 * SECONDS_PER_DAY
+"""Extra time covered on each side of the requested span [s] (our choice)."""
+
+ANALYTIC_NAME = "analytic (Montenbruck & Gill 2000, sec. 3.3.2)"
+DE421_NAME = "DE421"
+
+_SECONDS_PER_CENTURY = SECONDS_PER_DAY * DAYS_PER_JULIAN_CENTURY
+
+
+# ---- DE421 data access (Python) -----------------------------------------------------
+@lru_cache(maxsize=1)
+def _de421_dir() -> str:
+    import de421
+
+    return os.path.dirname(de421.__file__)
+
+
+@lru_cache(maxsize=1)
+def de421_constants() -> dict[str, float]:
+    """The DE421 constants shipped with the ``de421`` package (EMRAT, AU [km], jalpha, ...)."""
+    raw = np.load(os.path.join(_de421_dir(), "constants.npy"))
+    return {k.decode("ascii"): float(v) for k, v in raw}
+
+
+@lru_cache(maxsize=3)
+def _de421_sets(body: str) -> np.ndarray:
+    return np.load(os.path.join(_de421_dir(), f"jpl-{body}.npy"), mmap_mode="r")
+
+
+def de421_span_jd() -> tuple[float, float]:
+    """(first, last) TDB Julian date covered by the packaged DE421 coefficients."""
+    c = de421_constants()
+    return c["jalpha"], c["jomega"]
+
+
+def epoch_tt_jd(epoch: Any) -> tuple[float, float]:
+    """TT two-part Julian date of ``epoch``.
+
+    ``epoch`` is a :class:`propagator.timescales.Epoch` (anything with ``.to("TT")``
+    returning an object with ``jd1``/``jd2``) or a tuple ``(jd1, jd2)`` already in TT.
+    """
+    if hasattr(epoch, "to"):
+        e = epoch.to("TT")
+        return float(e.jd1), float(e.jd2)
+    jd1, jd2 = epoch
+    return float(jd1), float(jd2)
+
+
+def _span_jd(jd1: float, jd2: float, t_start: float, t_end: float, margin_s: float) -> tuple[float, float, float, float]:
+    t_lo = min(t_start, t_end) - margin_s
+    t_hi = max(t_start, t_end) + margin_s
+    return t_lo, t_hi, (jd1 - J2000_JD + jd2) + t_lo / SECONDS_PER_DAY, (jd1 - J2000_JD + jd2) + t_hi / SECONDS_PER_DAY
+
+
+def ephemeris_source(epoch: Any, t_start: float, t_end: float, margin_s: float = DEFAULT_MARGIN_S) -> str:
+    """Name of the Sun/Moon source a table for this span would use (no warning logged).
+
+    Returns ``DE421_NAME`` or ``ANALYTIC_NAME``; raises ValueError beyond the analytic
+    series' validity.
+    """
+    jd1, jd2 = epoch_tt_jd(epoch)
+    _, _, d_lo, d_hi = _span_jd(jd1, jd2, t_start, t_end, margin_s)
+    return _choose_source(d_lo, d_hi)
+
+
+def _choose_source(d_lo: float, d_hi: float) -> str:
+    """d_lo/d_hi: span as TT days since J2000 (TDB-TT < 2 ms is covered by the margin)."""
+    ja, jo = de421_span_jd()
+    if d_lo >= ja - J2000_JD and d_hi <= jo - J2000_JD:
+        return DE421_NAME
+    lim = ANALYTIC_VALID_CENTURIES * DAYS_PER_JULIAN_CENTURY
+    if d_lo < -lim or d_hi > lim:
+        raise ValueError(
+            f"Sun/Moon ephemeris: span JD(TT) {d_lo + J2000_JD:.1f} .. {d_hi + J2000_JD:.1f} is outside "
+            f"DE421 (JD {ja:.1f} .. {jo:.1f}, 1899-12-04 .. 2200-02-01) and outside the validity of the "
+            f"analytic fallback series (J2000 +/- {ANALYTIC_VALID_CENTURIES:g} centuries, JD "
+            f"{J2000_JD - lim:.1f} .. {J2000_JD + lim:.1f}, years 1500 .. 2500)")
+    return ANALYTIC_NAME
+
+
+def build_sun_moon_table(epoch: Any, t_start: float, t_end: float,
+                         margin_s: float = DEFAULT_MARGIN_S) -> np.ndarray:
+    """Flat float64 Sun/Moon table covering [t_start, t_end] (+/- margin) around ``epoch``.
+
+    Args:
+        epoch: case epoch, :class:`propagator.timescales.Epoch` or TT tuple (jd1, jd2).
+        t_start, t_end: span in seconds since the epoch (TT), either order.
+        margin_s: extra coverage on each side [s].
+
+    Returns:
+        The table read by :func:`sun_moon_nb` (layout in the module docstring).  Holds the
+        DE421 Chebyshev sets of Sun, EMB and Moon covering the span, converted to metres;
+        if the span leaves DE421 the table selects the analytic series (a warning is
+        logged).  Raises ValueError beyond the analytic series' validity.
+    """
+    jd1, jd2 = epoch_tt_jd(epoch)
+    t_lo, t_hi, d_lo, d_hi = _span_jd(jd1, jd2, t_start, t_end, margin_s)
+    source = _choose_source(d_lo, d_hi)
+    c = de421_constants()
+    header = np.zeros(HEADER_SIZE)
+    header[H_MAGIC] = TABLE_MAGIC
+    header[H_EPOCH_JD1] = jd1
+    header[H_EPOCH_JD2] = jd2
+    header[H_T0_CENT] = ((jd1 - J2000_JD) + jd2) / DAYS_PER_JULIAN_CENTURY
+    header[H_EARTH_SHARE] = 1.0 / (1.0 + c["EMRAT"])
+    header[H_T_MIN] = t_lo
+    header[H_T_MAX] = t_hi
+    if source == ANALYTIC_NAME:
+        ja, jo = de421_span_jd()
+        log.warning("Sun/Moon ephemeris: span JD(TT) %.1f .. %.1f leaves DE421 (JD %.1f .. %.1f); using the "
+                    "low-precision %s series (Sun < 0.02 deg, Moon < 6 arcmin / 600 km)",
+                    d_lo + J2000_JD, d_hi + J2000_JD, ja, jo, ANALYTIC_NAME)
+        header[H_SOURCE] = SOURCE_ANALYTIC
+        return header
+
+    header[H_SOURCE] = SOURCE_DE421
+    ja = c["jalpha"]
+    coarse = (c["jomega"] - ja) / _de421_sets("sun").shape[0]          # 16 days: Sun and EMB set span
+    k0 = int(math.floor((d_lo + J2000_JD - ja) / coarse))
+    k1 = int(math.floor((d_hi + J2000_JD - ja) / coarse)) + 1          # exclusive
+    n_all = _de421_sets("sun").shape[0]
+    k0, k1 = max(k0, 0), min(k1, n_all)
+    start_jd = ja + k0 * coarse
+    header[H_START_JD] = start_jd
+    header[H_E0_DAYS] = (jd1 - start_jd) + jd2
+    parts = [header]
+    offset = HEADER_SIZE
+    for b, name in enumerate(_BODY_FILES):
+        sets = _de421_sets(name)
+        n_sets, _, n_coef = sets.shape
+        span = (c["jomega"] - ja) / n_sets
+        ratio = int(round(coarse / span))
+        if abs(ratio * span - coarse) > 1e-9:
+            raise RuntimeError(f"DE421 {name}: set span {span} d does not divide {coarse} d")
+        sel = np.array(sets[k0 * ratio:k1 * ratio], dtype=np.float64) * 1000.0     # km -> m
+        base = H_BODY + 4 * b
+        header[base + B_NSETS] = sel.shape[0]
+        header[base + B_NCOEF] = n_coef
+        header[base + B_SPAN_DAYS] = span
+        header[base + B_OFFSET] = offset
+        parts.append(sel.ravel())
+        offset += sel.size
+    tdb = _tdb_minus_tt_sets(start_jd, coarse, k1 - k0)
+    base = H_BODY + 4 * SERIES_TDB_TT
+    header[base + B_NSETS] = k1 - k0
+    header[base + B_NCOEF] = TDB_TT_NCOEF
+    header[base + B_SPAN_DAYS] = coarse
+    header[base + B_OFFSET] = offset
+    parts.append(tdb.ravel())
+    return np.concatenate(parts)
+
+
+def _tdb_minus_tt_sets(start_jd: float, span: float, n_sets: int) -> np.ndarray:
+    """Chebyshev coefficients (n_sets, TDB_TT_NCOEF) of TDB - TT [s] from erfa.dtdb.
+
+    Interpolation at the Chebyshev nodes of each set [start_jd + k span, + span] (TT days).
+    """
+    import erfa
+
+    n = TDB_TT_NCOEF
+    x = np.cos(np.pi * (np.arange(n) + 0.5) / n)               # Chebyshev nodes on [-1, 1]
+    k = np.arange(n_sets)[:, None]
+    offs = k * span + (x[None, :] + 1.0) * 0.5 * span            # days from start_jd
+    vals = erfa.dtdb(start_jd, offs, 0.0, 0.0, 0.0, 0.0)         # geocentre: u = v = 0
+    # Discrete Chebyshev transform: c_j = (2 - [j == 0]) / n sum_i f(x_i) T_j(x_i).
+    Tj = np.cos(np.outer(np.arange(n), np.pi * (np.arange(n) + 0.5) / n))   # T_j(x_i)
+    coef = vals @ Tj.T * (2.0 / n)
+    coef[:, 0] *= 0.5
+    return coef
+
+
+def table_source(table: np.ndarray) -> str:
+    """``DE421_NAME`` or ``ANALYTIC_NAME`` according to the table header."""
+    if table.size < HEADER_SIZE or table[H_MAGIC] != TABLE_MAGIC:
+        raise ValueError("not a Sun/Moon table (bad header)")
+    return DE421_NAME if table[H_SOURCE] == SOURCE_DE421 else ANALYTIC_NAME
+
+
+# ---- compiled evaluator -------------------------------------------------------------
+@njit
+def _chebyshev_scalar(table, off, k, n_coef, x):
+    """sum_j c_j T_j(x) for the set k of a scalar series stored at table[off:]."""
+    c0 = off + k * n_coef
+    t_prev = 1.0
+    t_cur = x
+    acc = table[c0] + table[c0 + 1] * x
+    two_x = 2.0 * x
+    for j in range(2, n_coef):
+        t_next = two_x * t_cur - t_prev
+        acc += table[c0 + j] * t_next
+        t_prev = t_cur
+        t_cur = t_next
+    return acc
+
+
+@njit
+def _set_and_arg(table, b, days):
+    """(set index, Chebyshev argument x) of series b at ``days`` after the first stored set."""
+    base = H_BODY + 4 * b
+    n_sets = int(table[base + B_NSETS])
+    span = table[base + B_SPAN_DAYS]
+    k = int(math.floor(days / span))
+    if k < 0:
+        k = 0
+    elif k >= n_sets:
+        k = n_sets - 1
+    return k, 2.0 * (days - k * span) / span - 1.0
+
+
+@njit
+def tdb_minus_tt_nb(t, table):
+    """TDB - TT [s] at t [s since epoch, TT] from a DE421 table (erfa.dtdb, tabulated)."""
+    tt_days = table[H_E0_DAYS] + t / SECONDS_PER_DAY
+    k, x = _set_and_arg(table, SERIES_TDB_TT, tt_days)
+    base = H_BODY + 4 * SERIES_TDB_TT
+    return _chebyshev_scalar(table, int(table[base + B_OFFSET]), k, int(table[base + B_NCOEF]), x)
+
+
+@njit
+def _chebyshev_body(table, b, days, out, sign):
+    """out += sign * position of body b at ``days`` after the first stored set [m]."""
+    base = H_BODY + 4 * b
+    n_coef = int(table[base + B_NCOEF])
+    off = int(table[base + B_OFFSET])
+    k, x = _set_and_arg(table, b, days)
+    two_x = 2.0 * x
+    start = off + k * 3 * n_coef
+    for axis in range(3):
+        c0 = start + axis * n_coef
+        t_prev = 1.0
+        t_cur = x
+        acc = table[c0] + table[c0 + 1] * x
+        for j in range(2, n_coef):
+            t_next = two_x * t_cur - t_prev
+            acc += table[c0 + j] * t_next
+            t_prev = t_cur
+            t_cur = t_next
+        out[axis] += sign * acc
+
+
+@njit
+def sun_moon_nb(t, table, sun_out, moon_out):
+    """Geocentric GCRF positions of the Sun and Moon [m] at t [s since epoch, TT].
+
+    DE421 tables: Chebyshev evaluation (argument TDB; TDB - TT tabulated from erfa.dtdb),
+    Sun_geo = Sun - EMB + Moon_geo/(1 + EMRAT).  Analytic tables: Montenbruck & Gill (2000)
+    sec. 3.3.2.  Raises ValueError if t is outside the table's span.
+    """
+    if t < table[H_T_MIN] or t > table[H_T_MAX]:
+        raise ValueError("sun_moon_nb: time outside the span of the Sun/Moon table")
+    T = table[H_T0_CENT] + t / _SECONDS_PER_CENTURY
+    if table[H_SOURCE] != SOURCE_DE421:
+        sun_position_analytic_nb(T, sun_out)
+        moon_position_analytic_nb(T, moon_out)
+        return
+    days = table[H_E0_DAYS] + (t + tdb_minus_tt_nb(t, table)) / SECONDS_PER_DAY
+    for i in range(3):
+        sun_out[i] = 0.0
+        moon_out[i] = 0.0
+    _chebyshev_body(table, BODY_MOON, days, moon_out, 1.0)
+    _chebyshev_body(table, BODY_SUN, days, sun_out, 1.0)
+    _chebyshev_body(table, BODY_EMB, days, sun_out, -1.0)
+    es = table[H_EARTH_SHARE]
+    for i in range(3):
+        sun_out[i] += es * moon_out[i]
+
+
+@njit
+def _sun_moon_many(ts, table, sun, moon):
+    for i in range(ts.shape[0]):
+        sun_moon_nb(ts[i], table, sun[i], moon[i])
+
+
+def sun_moon_positions(epoch: Any, t: np.ndarray | float) -> tuple[np.ndarray, np.ndarray]:
+    """Geocentric GCRF Sun and Moon positions [m], shape (n, 3) each, at t [s since epoch, TT].
+
+    Convenience wrapper: builds a table over the span of ``t`` and calls :func:`sun_moon_nb`.
+    """
+    ts = np.atleast_1d(np.asarray(t, dtype=np.float64))
+    table = build_sun_moon_table(epoch, float(ts.min()), float(ts.max()))
+    sun = np.empty((ts.size, 3))
+    moon = np.empty((ts.size, 3))
+    _sun_moon_many(ts, table, sun, moon)
+    return sun, moon
