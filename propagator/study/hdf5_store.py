@@ -1,0 +1,897 @@
+"""HDF5 output store of a study: one self-describing group per case, appended while integrating.
+
+The layout is the schema ``longarc-study-trajectories``, version :data:`SCHEMA_VERSION`,
+documented group by group in ``docs/hdf5_schema.md`` (keep the two in step; a change of
+layout bumps the version and adds a line to that file's history).
+
+Design (measured pitfalls in ``DESIGN.md``):
+
+* Every time-indexed dataset is chunked along time, resizable (``maxshape`` None on the
+  time axis) and compressed with the shuffle filter followed by LZF (default) or gzip.
+  Float state data barely compress without shuffle.
+* A case is appended block by block (:meth:`CaseWriter.append`), so a year-long arc at
+  10 s spacing never has to be in memory whole.  The chunk cache is sized so that the
+  partially filled chunk of every dataset of a case stays in memory between appends.
+* Crash robustness: the file is flushed after a case group is created (status
+  ``"running"``), after it is finished or marked failed, and at most every
+  ``flush_interval_s`` seconds while appending.  A process killed mid-case leaves the
+  completed cases intact and the unfinished case with status ``"running"``; reopening
+  the file with ``mode="a"`` and calling :meth:`StudyStore.begin_case` for that name (or
+  :func:`mark_unfinished_as_interrupted`) cleans it up.
+* Files use HDF5's default (earliest) format.  ``libver="latest"`` is deliberately not
+  used: its superblock records "file open for writing", so a file left by a killed
+  writer then refuses to open ("file is already open for write") until the flag is
+  cleared with ``h5clear -s`` (measured with HDF5 2.0 / h5py 3.16: 3 of 3 writers killed
+  mid-append left such files; with the default format 18 of 18 reopened with all
+  completed cases intact; ``tests/test_hdf5_store.py`` repeats the latter).
+* While a :class:`StudyStore` is used as a context manager in the main thread with the
+  default SIGTERM disposition, SIGTERM raises ``SystemExit(143)`` so that the ``with``
+  block closes the file cleanly (SIGINT already raises ``KeyboardInterrupt``); if the
+  exception lands where Python swallows it, the next append raises it again.
+
+Units are SI (s, m, m/s, m/s^2, rad); time is seconds since the case epoch in TT.
+"""
+
+from __future__ import annotations
+
+import ast
+import datetime as _dt
+import functools
+import inspect
+import json
+import os
+import signal
+import threading
+import time
+from pathlib import Path
+from typing import Any, Iterator, Mapping, Sequence
+
+import h5py
+import numpy as np
+
+__all__ = [
+    "SCHEMA_NAME",
+    "SCHEMA_VERSION",
+    "STATUS_RUNNING",
+    "STATUS_COMPLETE",
+    "STATUS_FAILED",
+    "STATUS_INTERRUPTED",
+    "STATE_COLUMNS",
+    "STATE_UNITS",
+    "ELEMENT_COLUMNS",
+    "ELEMENT_UNITS",
+    "StudyStore",
+    "CaseWriter",
+    "read_case",
+    "iter_case_rows",
+    "mark_unfinished_as_interrupted",
+    "software_version",
+    "constants_table",
+    "open_for_reading",
+]
+
+SCHEMA_NAME = "longarc-study-trajectories"
+SCHEMA_VERSION = 1
+
+STATUS_RUNNING = "running"
+STATUS_COMPLETE = "complete"
+STATUS_FAILED = "failed"
+STATUS_INTERRUPTED = "interrupted"
+_STATUSES = (STATUS_RUNNING, STATUS_COMPLETE, STATUS_FAILED, STATUS_INTERRUPTED)
+
+STATE_COLUMNS = ("x", "y", "z", "vx", "vy", "vz")
+STATE_UNITS = ("m", "m", "m", "m/s", "m/s", "m/s")
+ELEMENT_COLUMNS = ("semi_major_axis", "eccentricity", "inclination", "raan",
+                   "argument_of_perigee", "true_anomaly")
+ELEMENT_UNITS = ("m", "1", "rad", "rad", "rad", "rad")
+RIC_COLUMNS = ("radial", "in_track", "cross_track")
+
+CASES_GROUP = "cases"
+DEFAULT_CHUNK_ROWS = 4096
+MAX_CHUNK_BYTES = 256 * 1024
+"""Upper bound of one chunk [bytes]: wide rows (STM, sensitivities) get fewer rows per chunk."""
+CHUNK_CACHE_BYTES = 4 * 1024 * 1024
+"""HDF5 raw-data chunk cache of each open dataset [bytes]: holds the partially filled
+chunk between appends (a chunk is at most 256 KiB); written chunks are evicted first
+(``rdcc_w0 = 1``), so memory stays bounded however long the arc."""
+
+_STR = h5py.string_dtype(encoding="utf-8")
+
+
+# --------------------------------------------------------------------------------------
+# Small helpers
+# --------------------------------------------------------------------------------------
+def software_version() -> str:
+    """Installed version of the ``longarc`` distribution, or ``"unknown"``."""
+    try:
+        from importlib.metadata import version
+
+        return version("longarc")
+    except Exception:  # PackageNotFoundError or a broken metadata install
+        return "unknown"
+
+
+def _utc_now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _json_default(obj: Any) -> Any:
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if isinstance(obj, (np.bool_,)):
+        return bool(obj)
+    if isinstance(obj, (Path, _dt.datetime, _dt.date)):
+        return str(obj)
+    if isinstance(obj, (set, frozenset, tuple)):
+        return list(obj)
+    return repr(obj)
+
+
+def _to_json(obj: Any) -> str:
+    return json.dumps(obj, default=_json_default, sort_keys=True, allow_nan=True)
+
+
+def _attr_value(value: Any) -> Any:
+    """Map a Python value onto something h5py stores as an attribute (JSON otherwise)."""
+    if isinstance(value, str):
+        return value
+    if isinstance(value, (bool, np.bool_)):
+        return np.bool_(value)
+    if isinstance(value, (int, np.integer)):
+        return np.int64(value)
+    if isinstance(value, (float, np.floating)):
+        return np.float64(value)
+    if value is None:
+        return ""
+    if isinstance(value, (list, tuple)) and value and all(isinstance(v, str) for v in value):
+        return np.array(list(value), dtype=_STR)
+    if (isinstance(value, (list, tuple)) and value
+            and all(isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
+                    for v in value)):
+        return np.array(value, dtype=np.float64)
+    if isinstance(value, np.ndarray) and value.dtype.kind in "fiub":
+        return value
+    return _to_json(value)
+
+
+def _read_attrs(obj: h5py.HLObject) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key, val in obj.attrs.items():
+        if isinstance(val, bytes):
+            val = val.decode("utf-8")
+        elif isinstance(val, np.ndarray) and val.dtype.kind == "O":
+            val = [v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in val.tolist()]
+        elif isinstance(val, np.generic):
+            val = val.item()
+        out[key] = val
+    return out
+
+
+def _str_list(val: Any) -> list[str]:
+    if val is None:
+        return []
+    if isinstance(val, (str, bytes)):
+        val = [val]
+    return [v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in np.asarray(val).tolist()]
+
+
+@functools.lru_cache(maxsize=1)
+def constants_table() -> dict[str, dict[str, Any]]:
+    """Every public numeric constant of `propagator.constants` with its documented source.
+
+    Returns ``{NAME: {"value": float, "description": docstring}}``; the description is
+    the string literal that follows the assignment in ``constants.py`` (where the
+    source of the value is cited), or ``""``.
+    """
+    from propagator import constants as mod
+
+    docs: dict[str, str] = {}
+    try:
+        tree = ast.parse(inspect.getsource(mod))
+        body = tree.body
+        for node, nxt in zip(body, body[1:] + [None]):
+            target = None
+            if isinstance(node, ast.AnnAssign) and isinstance(node.target, ast.Name):
+                target = node.target.id
+            elif isinstance(node, ast.Assign) and len(node.targets) == 1 and isinstance(node.targets[0], ast.Name):
+                target = node.targets[0].id
+            if (target and isinstance(nxt, ast.Expr) and isinstance(nxt.value, ast.Constant)
+                    and isinstance(nxt.value.value, str)):
+                docs[target] = nxt.value.value.strip()
+    except (OSError, TypeError, SyntaxError):  # source not available: values only
+        pass
+    table: dict[str, dict[str, Any]] = {}
+    for name in sorted(vars(mod)):
+        if not name.isupper() or name.startswith("_"):
+            continue
+        value = getattr(mod, name)
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            table[name] = {"value": float(value), "description": docs.get(name, "")}
+    return table
+
+
+def _chunk_rows(row_shape: tuple[int, ...], itemsize: int, chunk_rows: int) -> int:
+    row_bytes = max(1, int(np.prod(row_shape, dtype=np.int64)) * itemsize)
+    return int(max(16, min(chunk_rows, MAX_CHUNK_BYTES // row_bytes)))
+
+
+def open_for_reading(path: str | os.PathLike) -> h5py.File:
+    """Open a study file read-only.
+
+    If another process holds the file open for writing (HDF5 file locking refuses the
+    open), retry without locking: the reader then sees the state of the last flush,
+    which is the documented crash-consistency point of the store.
+    """
+    try:
+        return h5py.File(path, "r")
+    except OSError as exc:
+        if "lock" not in str(exc).lower():
+            raise
+        return h5py.File(path, "r", locking=False)
+
+
+# --------------------------------------------------------------------------------------
+# Store
+# --------------------------------------------------------------------------------------
+class StudyStore:
+    """A study's HDF5 file (schema ``longarc-study-trajectories``); a context manager.
+
+    Args:
+        path: file name; created with ``mode="a"``/``"w"`` if absent.
+        study_name: written to the root attribute ``study_name`` of a new file (or of a
+            file whose ``study_name`` is still empty).
+        mode: h5py mode: ``"a"`` (default, read/write, create), ``"w"`` (truncate),
+            ``"r"`` (read only).
+        compression: ``"lzf"`` (default), ``"gzip"`` or ``"none"``; the shuffle filter is
+            always applied before compression.
+        gzip_level: gzip level 0-9 (used with ``compression="gzip"``).
+        chunk_rows: rows per chunk along the time axis (fewer for wide rows, so that a
+            chunk stays below 256 KiB).
+        flush_interval_s: while appending, flush the file at most this often [s].
+    """
+
+    def __init__(self, path: str | os.PathLike, study_name: str = "", mode: str = "a",
+                 compression: str = "lzf", *, gzip_level: int = 4,
+                 chunk_rows: int = DEFAULT_CHUNK_ROWS, flush_interval_s: float = 10.0) -> None:
+        if compression not in ("lzf", "gzip", "none"):
+            raise ValueError(f"compression must be 'lzf', 'gzip' or 'none', got {compression!r}")
+        if not (isinstance(gzip_level, int) and 0 <= gzip_level <= 9):
+            raise ValueError(f"gzip_level must be an int in 0..9, got {gzip_level!r}")
+        if mode not in ("a", "w", "r", "r+"):
+            raise ValueError(f"mode must be 'a', 'w', 'r+' or 'r', got {mode!r}")
+        self.path = Path(path)
+        self.mode = mode
+        self.compression = compression
+        self.gzip_level = gzip_level
+        self.chunk_rows = int(chunk_rows)
+        self.flush_interval_s = float(flush_interval_s)
+        self._last_flush = time.monotonic()
+        self._writers: dict[str, CaseWriter] = {}
+        self._old_sigterm: Any = None
+        if mode == "r":
+            self._f = open_for_reading(self.path)
+        else:
+            self._f = h5py.File(self.path, mode, rdcc_nbytes=CHUNK_CACHE_BYTES, rdcc_nslots=4001, rdcc_w0=1.0)
+        self._init_root(study_name)
+
+    # --- file-level ---------------------------------------------------------------
+    def _init_root(self, study_name: str) -> None:
+        f = self._f
+        name = f.attrs.get("schema_name")
+        if name is None:
+            if self.mode == "r":
+                raise ValueError(f"{self.path}: not a longarc study file (no schema_name attribute)")
+            f.attrs["schema_name"] = SCHEMA_NAME
+            f.attrs["schema_version"] = np.int64(SCHEMA_VERSION)
+            f.attrs["software_version"] = software_version()
+            f.attrs["created_utc"] = _utc_now()
+            f.attrs["study_name"] = study_name
+            f.require_group(CASES_GROUP)
+            f.flush()
+            return
+        if isinstance(name, bytes):
+            name = name.decode()
+        if name != SCHEMA_NAME:
+            raise ValueError(f"{self.path}: schema {name!r} is not {SCHEMA_NAME!r}")
+        version = int(f.attrs.get("schema_version", -1))
+        if version > SCHEMA_VERSION:
+            raise ValueError(f"{self.path}: schema version {version} is newer than this "
+                             f"longarc understands ({SCHEMA_VERSION}); update longarc")
+        if self.mode != "r":
+            if study_name and not f.attrs.get("study_name", ""):
+                f.attrs["study_name"] = study_name
+            f.require_group(CASES_GROUP)
+
+    @property
+    def file(self) -> h5py.File:
+        """The underlying ``h5py.File``."""
+        return self._f
+
+    @property
+    def study_name(self) -> str:
+        return str(self._f.attrs.get("study_name", ""))
+
+    def flush(self) -> None:
+        """Write HDF5 buffers and metadata to disk (the crash-consistency point)."""
+        if self._f.id.valid and self.mode != "r":
+            self._f.flush()
+        self._last_flush = time.monotonic()
+
+    def _maybe_flush(self) -> None:
+        if time.monotonic() - self._last_flush >= self.flush_interval_s:
+            self.flush()
+
+    def close(self) -> None:
+        """Flush and close the file (unfinished writers keep status ``"running"``)."""
+        if self._f.id.valid:
+            if self.mode != "r":
+                self._f.flush()
+            self._f.close()
+        self._writers.clear()
+
+    def __enter__(self) -> "StudyStore":
+        global _termination_signal
+        _termination_signal = None
+        if (threading.current_thread() is threading.main_thread()
+                and signal.getsignal(signal.SIGTERM) is signal.SIG_DFL):
+            self._old_sigterm = signal.SIG_DFL
+            signal.signal(signal.SIGTERM, _raise_system_exit)
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        try:
+            self.close()
+        finally:
+            if self._old_sigterm is not None:
+                signal.signal(signal.SIGTERM, self._old_sigterm)
+                self._old_sigterm = None
+
+    def __del__(self) -> None:  # pragma: no cover - best effort on garbage collection
+        try:
+            if self._f.id.valid:
+                self.close()
+        except Exception:
+            pass
+
+    # --- queries ------------------------------------------------------------------
+    def _cases(self) -> h5py.Group:
+        return self._f[CASES_GROUP]
+
+    def case_names(self) -> list[str]:
+        """Names of all case groups, sorted."""
+        cases = self._f.get(CASES_GROUP)
+        return sorted(cases.keys()) if cases is not None else []
+
+    def case_status(self, name: str) -> str | None:
+        """The case's ``status`` attribute, or None if the case is absent."""
+        cases = self._f.get(CASES_GROUP)
+        grp = cases.get(name) if cases is not None else None
+        if grp is None:
+            return None
+        status = grp.attrs.get("status")
+        if isinstance(status, bytes):
+            status = status.decode()
+        return None if status is None else str(status)
+
+    def completed_cases(self) -> set[str]:
+        """Names of the cases whose status is ``"complete"`` (read from the file)."""
+        return {n for n in self.case_names() if self.case_status(n) == STATUS_COMPLETE}
+
+    # --- writing ------------------------------------------------------------------
+    def _require_writable(self) -> None:
+        if self.mode == "r":
+            raise PermissionError(f"{self.path} is open read-only")
+
+    def delete_case(self, name: str) -> None:
+        """Remove a case group (no-op if absent).  The space is reused by later writes."""
+        self._require_writable()
+        if name in self._writers:
+            self._writers.pop(name)._closed = True
+        if name in self._cases():
+            del self._cases()[name]
+
+    def begin_case(self, name: str, *, epoch_iso: str, epoch_jd1: float, epoch_jd2: float,
+                   epoch_scale: str, case_config_toml: str, force_models: list[dict],
+                   extra_attrs: dict | None = None) -> "CaseWriter":
+        """Create the group ``/cases/<name>`` with status ``"running"`` and return its writer.
+
+        An existing group of that name (a stale unfinished case, or a case the caller
+        chose to recompute) is deleted first.  The file is flushed, so a crash from here
+        on leaves the case visible with status ``"running"``.
+        """
+        self._require_writable()
+        _check_termination()
+        _check_case_name(name)
+        self.delete_case(name)
+        grp = self._cases().create_group(name)
+        attrs = {
+            "status": STATUS_RUNNING,
+            "error": "",
+            "traceback": "",
+            "epoch_iso": str(epoch_iso),
+            "epoch_jd1": float(epoch_jd1),
+            "epoch_jd2": float(epoch_jd2),
+            "epoch_scale": str(epoch_scale),
+            "time_scale": "TT",
+            "case_config_toml": str(case_config_toml),
+            "force_models_json": _to_json(list(force_models)),
+            "constants_json": _to_json(constants_table()),
+            "software_version": software_version(),
+            "started_utc": _utc_now(),
+            "finished_utc": "",
+            "n_samples": 0,
+        }
+        for key, val in (extra_attrs or {}).items():
+            if key in attrs:
+                raise ValueError(f"extra attribute {key!r} clashes with a schema attribute of the case")
+            attrs[key] = val
+        for key, val in attrs.items():
+            grp.attrs[key] = _attr_value(val)
+        self.flush()
+        writer = CaseWriter(self, grp)
+        self._writers[name] = writer
+        return writer
+
+    def mark_failed(self, name: str, error: str, traceback_text: str = "") -> None:
+        """Set a case's status to ``"failed"`` with the error text and traceback.
+
+        Creates a bare case group when the case never began (e.g. it failed while its
+        force models were prepared).  Flushes the file.
+        """
+        self._require_writable()
+        _check_case_name(name)
+        grp = self._cases().get(name)
+        if grp is None:
+            grp = self._cases().create_group(name)
+            grp.attrs["started_utc"] = _utc_now()
+            grp.attrs["software_version"] = software_version()
+            grp.attrs["n_samples"] = np.int64(0)
+        grp.attrs["status"] = STATUS_FAILED
+        grp.attrs["error"] = str(error)
+        grp.attrs["traceback"] = str(traceback_text)
+        grp.attrs["finished_utc"] = _utc_now()
+        writer = self._writers.pop(name, None)
+        if writer is not None:
+            writer._closed = True
+        self.flush()
+
+    def import_case_from(self, other_path: str | os.PathLike, name: str) -> None:
+        """Copy the case group ``name`` from another study file (e.g. a per-worker file).
+
+        The group is copied whole (datasets with their chunking and filters, attributes,
+        status).  An existing group of that name in this file is replaced.  Raises
+        ``KeyError`` if the other file has no such case.
+        """
+        self._require_writable()
+        other_path = Path(other_path)
+        if other_path.resolve() == self.path.resolve():
+            raise ValueError("import_case_from: source and destination are the same file")
+        with open_for_reading(other_path) as src:
+            cases = src.get(CASES_GROUP)
+            if cases is None or name not in cases:
+                raise KeyError(f"{other_path}: no case {name!r}")
+            self.delete_case(name)
+            self._f.copy(cases[name], self._cases(), name=name)
+        self.flush()
+
+    # dataset creation used by CaseWriter
+    def _filters(self) -> dict[str, Any]:
+        if self.compression == "lzf":
+            return {"compression": "lzf", "shuffle": True}
+        if self.compression == "gzip":
+            return {"compression": "gzip", "compression_opts": self.gzip_level, "shuffle": True}
+        return {}
+
+    def _create_series(self, parent: h5py.Group, name: str, row_shape: tuple[int, ...],
+                       dtype: Any = np.float64) -> h5py.Dataset:
+        is_str = h5py.check_string_dtype(np.dtype(dtype)) is not None
+        itemsize = 16 if is_str else np.dtype(dtype).itemsize
+        rows = _chunk_rows(row_shape, itemsize, self.chunk_rows)
+        # variable-length strings live in the global heap: filters would only see references
+        filters = {} if is_str else self._filters()
+        return parent.create_dataset(name, shape=(0, *row_shape), maxshape=(None, *row_shape),
+                                     chunks=(rows, *row_shape), dtype=dtype, **filters)
+
+
+_termination_signal: int | None = None
+"""Set by the SIGTERM handler; checked by the store's writing calls (see below)."""
+
+
+def _raise_system_exit(signum: int, frame: Any) -> None:
+    """SIGTERM handler installed while a store is open: raise ``SystemExit(128 + signum)``.
+
+    Python runs signal handlers between bytecodes, which may be inside a weakref callback
+    or ``__del__`` (h5py uses many), where exceptions are printed and swallowed.  The
+    signal is therefore also recorded, and the next ``append`` / ``begin_case`` raises.
+    """
+    global _termination_signal
+    _termination_signal = signum
+    code = getattr(frame, "f_code", None)
+    if code is not None and (code.co_name == "__del__" or code.co_filename.endswith("weakref.py")):
+        return  # an exception here would be swallowed (and printed); the next append raises
+    raise SystemExit(128 + signum)
+
+
+def _check_termination() -> None:
+    if _termination_signal is not None:
+        raise SystemExit(128 + _termination_signal)
+
+
+def _check_case_name(name: str) -> None:
+    if not isinstance(name, str) or not name or "/" in name or name in (".", ".."):
+        raise ValueError(f"case name must be a non-empty string without '/', got {name!r}")
+
+
+def _append_rows(ds: h5py.Dataset, data: np.ndarray) -> None:
+    n0 = ds.shape[0]
+    m = data.shape[0]
+    if m == 0:
+        return
+    ds.resize(n0 + m, axis=0)
+    ds[n0:n0 + m] = data
+
+
+# --------------------------------------------------------------------------------------
+# Case writer
+# --------------------------------------------------------------------------------------
+class CaseWriter:
+    """Appends the time series, events and fits of one case; obtained from
+    :meth:`StudyStore.begin_case`.
+
+    Every :meth:`append` must give the same set of optional quantities (an optional
+    dataset is created by its first block); all time-indexed datasets of the case keep
+    the same length.
+    """
+
+    def __init__(self, store: StudyStore, group: h5py.Group) -> None:
+        self._store = store
+        self._grp = group
+        self.name = group.name.rsplit("/", 1)[-1]
+        self.n_samples = 0
+        self._closed = False
+        self._optional: set[str] | None = None
+        self._sens_names: list[str] | None = None
+
+    @property
+    def group(self) -> h5py.Group:
+        return self._grp
+
+    def _check_open(self) -> None:
+        if self._closed or not self._grp.id.valid:
+            raise RuntimeError(f"case {self.name!r}: writer is closed")
+
+    def _series(self, path: str, row_shape: tuple[int, ...], attrs: Mapping[str, Any]) -> h5py.Dataset:
+        ds = self._grp.get(path)
+        if ds is None:
+            parent_name, _, leaf = path.rpartition("/")
+            parent = self._grp.require_group(parent_name) if parent_name else self._grp
+            ds = self._store._create_series(parent, leaf, row_shape)
+            for k, v in attrs.items():
+                ds.attrs[k] = _attr_value(v)
+        elif ds.shape[1:] != row_shape:
+            raise ValueError(f"case {self.name!r}: {path} rows have shape {ds.shape[1:]}, got {row_shape}")
+        return ds
+
+    def append(self, times: np.ndarray, states_gcrf: np.ndarray, *, states_itrf: np.ndarray | None = None,
+               elements: np.ndarray | None = None, accelerations: dict[str, np.ndarray] | None = None,
+               stm: np.ndarray | None = None, sensitivity: np.ndarray | None = None,
+               sensitivity_names: Sequence[str] | None = None) -> None:
+        """Append a block of samples.
+
+        Args:
+            times: (m,) seconds since the case epoch, TT [s].
+            states_gcrf: (m, 6) position [m] and velocity [m/s] in GCRF.
+            states_itrf: optional (m, 6) the same in ITRF.
+            elements: optional (m, 6) osculating a [m], e [-], i, RAAN, argument of
+                perigee, true anomaly [rad].
+            accelerations: optional {model name: (m, 3) acceleration [m/s^2] in GCRF}.
+            stm: optional (m, 6, 6) state transition matrix d x(t) / d x(t0).
+            sensitivity: optional (m, 6, ns) d x(t) / d p for the named parameters.
+            sensitivity_names: the ns parameter names (required with ``sensitivity``).
+        """
+        self._check_open()
+        _check_termination()
+        t = np.ascontiguousarray(times, dtype=np.float64).reshape(-1)
+        m = t.shape[0]
+        blocks: dict[str, tuple[np.ndarray, tuple[int, ...], dict[str, Any]]] = {}
+
+        def take(key: str, arr: Any, row_shape: tuple[int, ...] | None, attrs: dict[str, Any]) -> None:
+            a = np.ascontiguousarray(arr, dtype=np.float64)
+            if row_shape is None:
+                row_shape = a.shape[1:]
+            if a.shape != (m, *row_shape):
+                raise ValueError(f"case {self.name!r}: {key} has shape {a.shape}, expected {(m, *row_shape)}")
+            blocks[key] = (a, row_shape, attrs)
+
+        take("state_gcrf", states_gcrf, (6,), {"frame": "GCRF", "columns": list(STATE_COLUMNS),
+                                               "units": list(STATE_UNITS)})
+        if states_itrf is not None:
+            take("state_itrf", states_itrf, (6,), {"frame": "ITRF", "columns": list(STATE_COLUMNS),
+                                                   "units": list(STATE_UNITS)})
+        if elements is not None:
+            take("elements_osculating", elements, (6,),
+                 {"columns": list(ELEMENT_COLUMNS), "units": list(ELEMENT_UNITS), "frame": "GCRF",
+                  "description": "osculating Keplerian elements of the GCRF state (two-body, GM of the "
+                                 "case's central body)"})
+        for model, acc in (accelerations or {}).items():
+            _check_case_name(model)
+            take(f"acceleration/{model}", acc, (3,), {"frame": "GCRF", "units": "m/s^2",
+                                                     "columns": ["ax", "ay", "az"], "model": model})
+        if stm is not None:
+            take("stm", stm, (6, 6), {"units": "mixed (d state / d initial state, SI)",
+                                      "description": "state transition matrix d x(t) / d x(t0), GCRF, "
+                                                     "state order x y z vx vy vz"})
+        if sensitivity is not None:
+            names = _str_list(sensitivity_names)
+            sens = np.asarray(sensitivity)
+            if sens.ndim != 3 or len(names) != sens.shape[2]:
+                raise ValueError(f"case {self.name!r}: sensitivity of shape {sens.shape} needs "
+                                 f"{sens.shape[-1] if sens.ndim == 3 else '?'} sensitivity_names, got {names}")
+            if self._sens_names is not None and names != self._sens_names:
+                raise ValueError(f"case {self.name!r}: sensitivity_names changed from {self._sens_names} to {names}")
+            self._sens_names = names
+            take("sensitivity", sens, (6, len(names)),
+                 {"parameter_names": names,
+                  "description": "d x(t) / d p for each parameter p (GCRF, x y z vx vy vz rows)",
+                  "units": "SI per unit of each parameter"})
+        elif sensitivity_names is not None:
+            raise ValueError(f"case {self.name!r}: sensitivity_names given without sensitivity")
+
+        optional = set(blocks) - {"state_gcrf"}
+        if self._optional is None:
+            if self.n_samples == 0:
+                self._optional = optional
+        if self._optional is not None and optional != self._optional:
+            raise ValueError(f"case {self.name!r}: this block has {sorted(optional)} but earlier blocks "
+                             f"had {sorted(self._optional)}; every block must carry the same quantities")
+        if m == 0:
+            return
+        if not np.all(np.isfinite(t)):
+            raise ValueError(f"case {self.name!r}: non-finite times")
+
+        ds_t = self._series("time_s", (), {"units": "s", "time_scale": "TT",
+                                           "description": "seconds since the case epoch (epoch_* attributes), TT"})
+        _append_rows(ds_t, t)
+        for key, (arr, row_shape, attrs) in blocks.items():
+            _append_rows(self._series(key, row_shape, attrs), arr)
+        self.n_samples += m
+        self._grp.attrs["n_samples"] = np.int64(self.n_samples)
+        self._store._maybe_flush()
+
+    def add_events(self, times: np.ndarray, kinds: Sequence[str], states: np.ndarray) -> None:
+        """Append events: times [s since epoch, TT], kind names, GCRF states (m, 6) [m, m/s].
+
+        Stored as parallel datasets ``events/time_s``, ``events/kind``, ``events/state_gcrf``.
+        """
+        self._check_open()
+        t = np.ascontiguousarray(times, dtype=np.float64).reshape(-1)
+        kinds = [str(k) for k in kinds]
+        st = np.ascontiguousarray(states, dtype=np.float64).reshape(-1, 6) if len(t) else np.zeros((0, 6))
+        if len(kinds) != t.shape[0] or st.shape[0] != t.shape[0]:
+            raise ValueError(f"case {self.name!r}: events need equal lengths (times {t.shape[0]}, "
+                             f"kinds {len(kinds)}, states {st.shape[0]})")
+        ev = self._grp.require_group("events")
+        st_ = self._store
+        if "time_s" not in ev:
+            ds = st_._create_series(ev, "time_s", ())
+            ds.attrs.update({"units": "s", "time_scale": "TT", "description": "event time since the case epoch"})
+            ds = st_._create_series(ev, "kind", (), dtype=_STR)
+            ds.attrs["description"] = "event kind name"
+            ds = st_._create_series(ev, "state_gcrf", (6,))
+            ds.attrs["frame"] = "GCRF"
+            ds.attrs["columns"] = np.array(STATE_COLUMNS, dtype=_STR)
+            ds.attrs["units"] = np.array(STATE_UNITS, dtype=_STR)
+        _append_rows(ev["time_s"], t)
+        _append_rows(ev["kind"], np.array(kinds, dtype=object))
+        _append_rows(ev["state_gcrf"], st)
+
+    def add_fit(self, fit_name: str, values: dict[str, float], residuals_ric: np.ndarray | None = None,
+                residual_times: np.ndarray | None = None, table: dict[str, np.ndarray] | None = None,
+                attrs: dict | None = None) -> None:
+        """Store an element fit under ``fits/<fit_name>`` (replaced if present).
+
+        Args:
+            fit_name: e.g. "osculating", "broadcast_style".
+            values: element (or parameter) name -> value in SI units (stored as the
+                parallel datasets ``element_names`` / ``element_values``).
+            residuals_ric: optional (m, 3) residual position fit - trajectory in the
+                radial / in-track / cross-track frame [m].
+            residual_times: (m,) seconds since the case epoch, TT [s] (required with
+                ``residuals_ric``).
+            table: optional column name -> 1-D array (e.g. an RMS table), stored in
+                ``fits/<fit_name>/table/<column>``; string columns are allowed.
+            attrs: optional attributes (units, reference epoch, ...).
+        """
+        self._check_open()
+        _check_case_name(fit_name)
+        fits = self._grp.require_group("fits")
+        if fit_name in fits:
+            del fits[fit_name]
+        g = fits.create_group(fit_name)
+        names = list(values)
+        g.create_dataset("element_names", data=np.array(names, dtype=object), dtype=_STR)
+        g.create_dataset("element_values", data=np.array([float(values[k]) for k in names], dtype=np.float64))
+        if residuals_ric is not None:
+            ric = np.ascontiguousarray(residuals_ric, dtype=np.float64)
+            if residual_times is None:
+                raise ValueError(f"fit {fit_name!r}: residual_times are required with residuals_ric")
+            rt = np.ascontiguousarray(residual_times, dtype=np.float64).reshape(-1)
+            if ric.shape != (rt.shape[0], 3):
+                raise ValueError(f"fit {fit_name!r}: residuals_ric has shape {ric.shape}, expected {(rt.shape[0], 3)}")
+            ds = self._store._create_series(g, "residual_time_s", ())
+            _append_rows(ds, rt)
+            ds.attrs.update({"units": "s", "time_scale": "TT"})
+            ds = self._store._create_series(g, "residual_ric", (3,))
+            _append_rows(ds, ric)
+            ds.attrs["units"] = "m"
+            ds.attrs["columns"] = np.array(RIC_COLUMNS, dtype=_STR)
+            ds.attrs["description"] = "fitted minus propagated position, radial / in-track / cross-track"
+        elif residual_times is not None:
+            raise ValueError(f"fit {fit_name!r}: residual_times given without residuals_ric")
+        if table:
+            tg = g.create_group("table")
+            tg.attrs["columns"] = np.array(list(table), dtype=_STR)
+            for col, vals in table.items():
+                _check_case_name(col)
+                arr = np.asarray(vals)
+                if arr.dtype.kind in "USO":
+                    tg.create_dataset(col, data=np.array([str(v) for v in arr.reshape(-1)], dtype=object), dtype=_STR)
+                else:
+                    tg.create_dataset(col, data=arr)
+        for k, v in (attrs or {}).items():
+            g.attrs[k] = _attr_value(v)
+
+    def finish(self, statistics: dict, status: str = STATUS_COMPLETE) -> None:
+        """Write the integrator statistics, set the status (default ``"complete"``) and flush.
+
+        ``statistics`` (e.g. nfev, accepted, rejected, min_step_s, max_step_s, status,
+        message) become attributes of the subgroup ``integrator_statistics``.
+        """
+        self._check_open()
+        if status not in _STATUSES:
+            raise ValueError(f"status must be one of {_STATUSES}, got {status!r}")
+        sg = self._grp.require_group("integrator_statistics")
+        for k, v in (statistics or {}).items():
+            sg.attrs[str(k)] = _attr_value(v)
+        self._grp.attrs["n_samples"] = np.int64(self.n_samples)
+        self._grp.attrs["finished_utc"] = _utc_now()
+        self._grp.attrs["status"] = status
+        self._closed = True
+        self._store._writers.pop(self.name, None)
+        self._store.flush()
+
+
+# --------------------------------------------------------------------------------------
+# Reading
+# --------------------------------------------------------------------------------------
+def _read_ds(grp: h5py.Group, name: str) -> np.ndarray | None:
+    ds = grp.get(name)
+    return None if ds is None else ds[()]
+
+
+def _read_strings(ds: h5py.Dataset | None) -> list[str]:
+    if ds is None:
+        return []
+    return [v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in ds[()].tolist()]
+
+
+def _json_attr(attrs: Mapping[str, Any], key: str, default: Any) -> Any:
+    text = attrs.get(key)
+    if not text:
+        return default
+    try:
+        return json.loads(text)
+    except (TypeError, ValueError):
+        return default
+
+
+def read_case(path: str | os.PathLike, name: str) -> dict[str, Any]:
+    """Load one case whole (arrays + attributes); for tests, plots and exports of short arcs.
+
+    Returns a dict with keys ``name``, ``attrs`` (all case attributes), ``status``,
+    ``epoch`` (``{"iso", "jd1", "jd2", "scale"}``), ``time_s``, ``state_gcrf``,
+    ``state_itrf``, ``elements_osculating``, ``stm``, ``sensitivity`` (None when absent),
+    ``sensitivity_names``, ``accelerations`` ({model: array}), ``events`` (None or
+    ``{"time_s", "kind", "state_gcrf"}``), ``fits`` ({fit: {"values", "residual_time_s",
+    "residual_ric", "table", "attrs"}}), ``integrator_statistics``, ``force_models``,
+    ``constants`` and ``case_config_toml``.  Use :func:`iter_case_rows` for long arcs.
+    """
+    with open_for_reading(path) as f:
+        cases = f.get(CASES_GROUP)
+        if cases is None or name not in cases:
+            raise KeyError(f"{path}: no case {name!r}")
+        g = cases[name]
+        attrs = _read_attrs(g)
+        out: dict[str, Any] = {
+            "name": name,
+            "attrs": attrs,
+            "status": attrs.get("status"),
+            "epoch": {"iso": attrs.get("epoch_iso"), "jd1": attrs.get("epoch_jd1"),
+                      "jd2": attrs.get("epoch_jd2"), "scale": attrs.get("epoch_scale")},
+            "time_s": _read_ds(g, "time_s"),
+            "state_gcrf": _read_ds(g, "state_gcrf"),
+            "state_itrf": _read_ds(g, "state_itrf"),
+            "elements_osculating": _read_ds(g, "elements_osculating"),
+            "stm": _read_ds(g, "stm"),
+            "sensitivity": _read_ds(g, "sensitivity"),
+            "sensitivity_names": _str_list(g["sensitivity"].attrs.get("parameter_names")) if "sensitivity" in g else [],
+            "accelerations": {k: v[()] for k, v in g["acceleration"].items()} if "acceleration" in g else {},
+            "events": None,
+            "fits": {},
+            "integrator_statistics": _read_attrs(g["integrator_statistics"]) if "integrator_statistics" in g else {},
+            "force_models": _json_attr(attrs, "force_models_json", []),
+            "constants": _json_attr(attrs, "constants_json", {}),
+            "case_config_toml": attrs.get("case_config_toml", ""),
+        }
+        if "events" in g:
+            ev = g["events"]
+            out["events"] = {"time_s": ev["time_s"][()], "kind": _read_strings(ev["kind"]),
+                             "state_gcrf": ev["state_gcrf"][()]}
+        for fit_name, fg in (g["fits"].items() if "fits" in g else []):
+            names = _read_strings(fg["element_names"])
+            vals = fg["element_values"][()]
+            table: dict[str, Any] = {}
+            if "table" in fg:
+                tg = fg["table"]
+                for col in _str_list(tg.attrs.get("columns")) or list(tg.keys()):
+                    ds = tg[col]
+                    table[col] = _read_strings(ds) if h5py.check_string_dtype(ds.dtype) else ds[()]
+            out["fits"][fit_name] = {
+                "values": dict(zip(names, (float(v) for v in vals))),
+                "residual_time_s": _read_ds(fg, "residual_time_s"),
+                "residual_ric": _read_ds(fg, "residual_ric"),
+                "table": table,
+                "attrs": _read_attrs(fg),
+            }
+    return out
+
+
+def iter_case_rows(path: str | os.PathLike, name: str, fields: Sequence[str] = ("time_s", "state_gcrf"),
+                   block_rows: int = 65536, reverse: bool = False) -> Iterator[dict[str, np.ndarray]]:
+    """Yield consecutive blocks ``{field: array}`` of a case's time series without
+    loading the whole arc (``fields`` are dataset paths inside the case group, e.g.
+    ``"state_itrf"`` or ``"acceleration/srp"``).  ``reverse`` yields the blocks from the
+    end, each block reversed (chronological order for a backward propagation)."""
+    with open_for_reading(path) as f:
+        g = f[CASES_GROUP][name]
+        missing = [k for k in fields if k not in g]
+        if missing:
+            raise KeyError(f"case {name!r} has no dataset(s) {missing}")
+        dsets = [g[k] for k in fields]
+        n = min(ds.shape[0] for ds in dsets)
+        starts = range(0, n, block_rows)
+        if reverse:
+            starts = reversed(starts)
+        for i0 in starts:
+            i1 = min(n, i0 + block_rows)
+            block = {k: ds[i0:i1] for k, ds in zip(fields, dsets)}
+            if reverse:
+                block = {k: v[::-1] for k, v in block.items()}
+            yield block
+
+
+def mark_unfinished_as_interrupted(path: str | os.PathLike) -> list[str]:
+    """Set status ``"interrupted"`` on every case still marked ``"running"`` (left by a
+    process that ended mid-case) and return their names.  Do not call it while a writer
+    has the file open."""
+    names: list[str] = []
+    with h5py.File(path, "a") as f:
+        cases = f.get(CASES_GROUP)
+        if cases is None:
+            return names
+        for name in sorted(cases):
+            g = cases[name]
+            status = g.attrs.get("status")
+            if isinstance(status, bytes):
+                status = status.decode()
+            if status == STATUS_RUNNING:
+                g.attrs["status"] = STATUS_INTERRUPTED
+                g.attrs["error"] = ("the process writing this case ended before the case finished "
+                                    f"(found running at {_utc_now()})")
+                names.append(name)
+        f.flush()
+    return names
