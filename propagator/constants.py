@@ -44,6 +44,14 @@ GPS_BROADCAST_MU: float = 3.986005e14
 """WGS 84 value of the Earth's gravitational constant for GPS user [m^3/s^2] (IS-GPS-200, Table 20-IV)."""
 GPS_BROADCAST_OMEGA_E_DOT: float = 7.2921151467e-5
 """WGS 84 value of the Earth's rotation rate for the GPS user algorithm [rad/s] (IS-GPS-200, Table 20-IV)."""
+GPS_PI: float = 3.1415926535898
+"""Value of pi the GPS user algorithms use to convert semicircles [-] (IS-GPS-200, Table 20-IV; from memory)."""
+# CNAV user algorithm (IS-GPS-200, section 30.3.3.1.3, Table 30-II; table number from memory); it
+# uses the same mu and OMEGA_e-dot as Table 20-IV.
+GPS_CNAV_A_REF: float = 26_559_710.0
+"""Reference semi-major axis A_REF of the CNAV ephemeris, A0 = A_REF + Delta A [m] (IS-GPS-200, Table 30-II)."""
+GPS_CNAV_OMEGA_DOT_REF: float = -2.6e-9 * GPS_PI
+"""Reference rate of right ascension OMEGA-dot_REF = -2.6e-9 semicircles/s, in [rad/s] (IS-GPS-200, Table 30-II)."""
 
 # --- Sun and Moon ----------------------------------------------------------------------
 AU: float = 149597870700.0

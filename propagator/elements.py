@@ -49,8 +49,10 @@ ed. 1988, chapter 6; attribution from memory) inside a bracket that always conta
 root; any step leaving the bracket is replaced by bisection, so convergence is
 guaranteed for every M and 0 <= e < 1 (resp. e > 1).
 
-Compiled kernels (suffix ``_nb``) are plain ``@njit`` scalar functions for use inside
-other compiled code; the Python functions validate their input, broadcast and loop.
+Compiled kernels (suffix ``_nb``) are ``@njit(cache=True)`` scalar functions, usable inside
+other compiled code; the Python functions validate their input, broadcast and loop.  The
+disk cache is safe here because these kernels call only functions of this module (numba
+invalidates a cache when its own file changes, not when another module does).
 """
 
 from __future__ import annotations
@@ -107,7 +109,7 @@ _EPS = 2.220446049250313e-16  # float64 machine epsilon (IEEE 754 binary64: 2**-
 # =====================================================================================
 
 
-@njit
+@njit(cache=True)
 def _wrap_2pi(x):
     """Angle reduced to [0, 2 pi) [rad]."""
     y = x - TWO_PI * math.floor(x / TWO_PI)
@@ -116,13 +118,13 @@ def _wrap_2pi(x):
     return y
 
 
-@njit
+@njit(cache=True)
 def _wrap_pi(x):
     """Angle reduced to [-pi, pi] [rad]."""
     return x - TWO_PI * math.floor(x / TWO_PI + 0.5)
 
 
-@njit
+@njit(cache=True)
 def kepler_elliptic_nb(M, e):
     """Eccentric anomaly E [rad] from mean anomaly M [rad] and eccentricity 0 <= e < 1.
 
@@ -174,7 +176,7 @@ def kepler_elliptic_nb(M, e):
     return s * E + k * TWO_PI
 
 
-@njit
+@njit(cache=True)
 def kepler_hyperbolic_nb(M, e):
     """Hyperbolic anomaly H [rad] from hyperbolic mean anomaly M and eccentricity e > 1.
 
@@ -217,13 +219,13 @@ def kepler_hyperbolic_nb(M, e):
     return s * H
 
 
-@njit
+@njit(cache=True)
 def _same_revolution(ref, ang):
     """ang shifted by a multiple of 2 pi to lie within pi of ref."""
     return ang + TWO_PI * math.floor((ref - ang) / TWO_PI + 0.5)
 
 
-@njit
+@njit(cache=True)
 def true_to_eccentric_nb(nu, e):
     """Eccentric anomaly E [rad] from true anomaly nu [rad], 0 <= e < 1.
 
@@ -234,7 +236,7 @@ def true_to_eccentric_nb(nu, e):
     return _same_revolution(nu, E)
 
 
-@njit
+@njit(cache=True)
 def eccentric_to_true_nb(E, e):
     """True anomaly nu [rad] from eccentric anomaly E [rad], 0 <= e < 1.
 
@@ -245,13 +247,13 @@ def eccentric_to_true_nb(E, e):
     return _same_revolution(E, nu)
 
 
-@njit
+@njit(cache=True)
 def eccentric_to_mean_nb(E, e):
     """Mean anomaly M = E - e sin E [rad] (Kepler's equation)."""
     return E - e * math.sin(E)
 
 
-@njit
+@njit(cache=True)
 def true_to_hyperbolic_nb(nu, e):
     """Hyperbolic anomaly H from true anomaly nu [rad] (reduced to (-pi, pi]), e > 1.
 
@@ -261,7 +263,7 @@ def true_to_hyperbolic_nb(nu, e):
     return 2.0 * math.atanh(math.sqrt((e - 1.0) / (e + 1.0)) * math.tan(0.5 * nu))
 
 
-@njit
+@njit(cache=True)
 def hyperbolic_to_true_nb(H, e):
     """True anomaly nu in (-pi, pi) [rad] from hyperbolic anomaly H, e > 1.
 
@@ -270,13 +272,13 @@ def hyperbolic_to_true_nb(H, e):
     return 2.0 * math.atan(math.sqrt((e + 1.0) / (e - 1.0)) * math.tanh(0.5 * H))
 
 
-@njit
+@njit(cache=True)
 def hyperbolic_to_mean_nb(H, e):
     """Hyperbolic mean anomaly M = e sinh H - H [rad]."""
     return e * math.sinh(H) - H
 
 
-@njit
+@njit(cache=True)
 def true_to_mean_nb(nu, e):
     """Mean anomaly from true anomaly: elliptic (e < 1) or hyperbolic (e > 1) [rad]."""
     if e < 1.0:
@@ -284,7 +286,7 @@ def true_to_mean_nb(nu, e):
     return hyperbolic_to_mean_nb(true_to_hyperbolic_nb(nu, e), e)
 
 
-@njit
+@njit(cache=True)
 def mean_to_true_nb(M, e):
     """True anomaly from mean anomaly: elliptic (e < 1) or hyperbolic (e > 1) [rad]."""
     if e < 1.0:
@@ -292,7 +294,7 @@ def mean_to_true_nb(M, e):
     return hyperbolic_to_true_nb(kepler_hyperbolic_nb(M, e), e)
 
 
-@njit
+@njit(cache=True)
 def _semi_major_axis(p, e, r, v2, gm):
     """Semi-major axis [m] from p = h^2/gm [m], e, |r| [m], |v|^2 [m^2/s^2].
 
@@ -316,7 +318,7 @@ def _semi_major_axis(p, e, r, v2, gm):
     return p / b2
 
 
-@njit
+@njit(cache=True)
 def kep_to_cart_nb(a, e, i, raan, argp, nu, gm, out):
     """Cartesian state from classical elements (a [m], e, i, raan, argp, nu [rad]).
 
@@ -358,7 +360,7 @@ def kep_to_cart_nb(a, e, i, raan, argp, nu, gm, out):
     out[5] = vxp * pz + vyp * qz
 
 
-@njit
+@njit(cache=True)
 def cart_to_kep_nb(state, gm, out):
     """Classical elements [a, e, i, raan, argp, nu] from a Cartesian state [m, m/s].
 
@@ -430,7 +432,7 @@ def cart_to_kep_nb(state, gm, out):
     out[5] = nu
 
 
-@njit
+@njit(cache=True)
 def _equinoctial_frame(p, q):
     """Equinoctial basis vectors f, g (I = +1) from p, q (Broucke & Cefola 1972)."""
     p2 = p * p
@@ -445,7 +447,7 @@ def _equinoctial_frame(p, q):
     return fx, fy, fz, gx, gy, gz
 
 
-@njit
+@njit(cache=True)
 def equinoctial_to_cart_nb(a, h, k, p, q, lam, gm, out):
     """Cartesian state [m, m/s] from equinoctial elements (a, h, k, p, q, lam), I = +1.
 
@@ -480,7 +482,7 @@ def equinoctial_to_cart_nb(a, h, k, p, q, lam, gm, out):
     out[5] = Xd * fz + Yd * gz
 
 
-@njit
+@njit(cache=True)
 def cart_to_equinoctial_nb(state, gm, out):
     """Equinoctial elements [a, h, k, p, q, lam] (I = +1) from a Cartesian state.
 
@@ -560,7 +562,7 @@ _KIND_TRUE_TO_MEAN = 8
 _KIND_MEAN_TO_TRUE = 9
 
 
-@njit
+@njit(cache=True)
 def _anomaly_loop(kind, x, e, out):
     for j in range(x.size):
         if kind == 0:
@@ -585,25 +587,25 @@ def _anomaly_loop(kind, x, e, out):
             out[j] = mean_to_true_nb(x[j], e[j])
 
 
-@njit
+@njit(cache=True)
 def _kep_to_cart_loop(el, gm, out):
     for j in range(el.shape[0]):
         kep_to_cart_nb(el[j, 0], el[j, 1], el[j, 2], el[j, 3], el[j, 4], el[j, 5], gm, out[j])
 
 
-@njit
+@njit(cache=True)
 def _cart_to_kep_loop(st, gm, out):
     for j in range(st.shape[0]):
         cart_to_kep_nb(st[j], gm, out[j])
 
 
-@njit
+@njit(cache=True)
 def _equinoctial_to_cart_loop(el, gm, out):
     for j in range(el.shape[0]):
         equinoctial_to_cart_nb(el[j, 0], el[j, 1], el[j, 2], el[j, 3], el[j, 4], el[j, 5], gm, out[j])
 
 
-@njit
+@njit(cache=True)
 def _cart_to_equinoctial_loop(st, gm, out):
     for j in range(st.shape[0]):
         cart_to_equinoctial_nb(st[j], gm, out[j])

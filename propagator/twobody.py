@@ -52,7 +52,7 @@ _TWO_PI_LO = 2.0 * math.sin(math.pi)
 # ---- double-double arithmetic (Dekker 1971; Hida, Li & Bailey 2001) ---------------
 
 
-@njit
+@njit(cache=True)
 def _two_sum(a, b):
     s = a + b
     bb = s - a
@@ -60,20 +60,20 @@ def _two_sum(a, b):
     return s, err
 
 
-@njit
+@njit(cache=True)
 def _quick_two_sum(a, b):
     s = a + b
     return s, b - (s - a)
 
 
-@njit
+@njit(cache=True)
 def _split(a):
     c = 134217729.0 * a  # 2^27 + 1
     hi = c - (c - a)
     return hi, a - hi
 
 
-@njit
+@njit(cache=True)
 def _two_prod(a, b):
     p = a * b
     ah, al = _split(a)
@@ -82,7 +82,7 @@ def _two_prod(a, b):
     return p, err
 
 
-@njit
+@njit(cache=True)
 def _dd_add(ah, al, bh, bl):
     s, e = _two_sum(ah, bh)
     t, f = _two_sum(al, bl)
@@ -92,14 +92,14 @@ def _dd_add(ah, al, bh, bl):
     return _quick_two_sum(s, e)
 
 
-@njit
+@njit(cache=True)
 def _dd_mul(ah, al, bh, bl):
     p, e = _two_prod(ah, bh)
     e += ah * bl + al * bh
     return _quick_two_sum(p, e)
 
 
-@njit
+@njit(cache=True)
 def _dd_div(ah, al, bh, bl):
     q1 = ah / bh
     ph, pl = _dd_mul(q1, 0.0, bh, bl)
@@ -112,7 +112,7 @@ def _dd_div(ah, al, bh, bl):
     return _dd_add(q1, q2, q3, 0.0)
 
 
-@njit
+@njit(cache=True)
 def _dd_sqrt(ah, al):
     if ah <= 0.0:
         return 0.0, 0.0
@@ -122,7 +122,7 @@ def _dd_sqrt(ah, al):
     return _quick_two_sum(x, rh / (2.0 * x))
 
 
-@njit
+@njit(cache=True)
 def _dd_dot3(a, b):
     sh, sl = _two_prod(a[0], b[0])
     for j in range(1, 3):
@@ -131,7 +131,7 @@ def _dd_dot3(a, b):
     return sh, sl
 
 
-@njit
+@njit(cache=True)
 def _reduce_dt(r0, v0, dt, gm):
     """dt reduced modulo the orbital period to |dt'| <= T/2 (ellipse), else dt unchanged.
 
@@ -167,7 +167,7 @@ _C2_SERIES = np.array([1.0 / math.factorial(2 * k + 2) for k in range(_N_SERIES)
 _C3_SERIES = np.array([1.0 / math.factorial(2 * k + 3) for k in range(_N_SERIES)])
 
 
-@njit
+@njit(cache=True)
 def stumpff_c2c3_nb(psi):
     """Stumpff functions c2(psi) = (1 - cos sqrt(psi))/psi, c3 = (sqrt(psi) - sin sqrt(psi))/sqrt(psi)^3.
 
@@ -193,7 +193,7 @@ def stumpff_c2c3_nb(psi):
     return 2.0 * s * s / (-psi), (math.sinh(x) - x) / (-psi * x)
 
 
-@njit
+@njit(cache=True)
 def _universal_time(chi, alpha, r0, sigma0):
     """(sqrt(gm) t(chi), r(chi)) of the universal Kepler equation (Vallado 2013, section 2.3)."""
     chi2 = chi * chi
@@ -204,7 +204,7 @@ def _universal_time(chi, alpha, r0, sigma0):
     return t, r
 
 
-@njit
+@njit(cache=True)
 def _starter(target, dt, alpha, r0, sigma0, gm):
     """Initial universal anomaly (Vallado 2013, Algorithm 8); same sign as dt, non-zero."""
     chi = 0.0
@@ -222,7 +222,7 @@ def _starter(target, dt, alpha, r0, sigma0, gm):
     return chi
 
 
-@njit
+@njit(cache=True)
 def twobody_nb(r0v, v0v, dt, gm, r_out, v_out):
     """Two-body state at t0 + dt from (r0 [m], v0 [m/s]) at t0; writes r_out, v_out.
 
@@ -302,7 +302,7 @@ def twobody_nb(r0v, v0v, dt, gm, r_out, v_out):
         v_out[j] = fdot * r0v[j] + gdot * v0v[j]
 
 
-@njit
+@njit(cache=True)
 def _twobody_loop(r0v, v0v, dts, gm, rs, vs):
     for j in range(dts.size):
         twobody_nb(r0v, v0v, dts[j], gm, rs[j], vs[j])
