@@ -67,6 +67,8 @@ class ForceModel:
         uses_velocity: True if the acceleration depends on velocity (finite-difference
             partials then also perturb v).
         module: import path of the module holding ``accel``/``partials`` (``__name__``).
+        conflicts_with: other model name -> reason; selecting both is a configuration
+            error (:func:`check_conflicts`), e.g. zonal_j2 with gravity_field (C20 twice).
     """
 
     name: str
@@ -79,6 +81,7 @@ class ForceModel:
     estimable: dict[str, int] = field(default_factory=dict)
     uses_velocity: bool = False
     module: str = ""
+    conflicts_with: dict[str, str] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         unknown = set(self.needs) - set(ALL_NEEDS)
@@ -132,6 +135,19 @@ def get(name: str) -> ForceModel:
         close = difflib.get_close_matches(name, list(_REGISTRY), n=1)
         hint = f" Did you mean {close[0]!r}?" if close else ""
         raise ValueError(f"unknown force model {name!r}.{hint} Known models: {', '.join(known_names())}") from None
+
+
+def check_conflicts(names: list[str] | tuple[str, ...]) -> None:
+    """Raise ``ValueError`` if two of the selected models must not be combined.
+
+    A conflict declared by either model (``ForceModel.conflicts_with``) counts; the
+    message names both models and gives the declared reason.
+    """
+    selected = set(names)
+    for name in names:
+        for other, reason in get(name).conflicts_with.items():
+            if other in selected:
+                raise ValueError(f"force models {name!r} and {other!r} cannot be selected together: {reason}")
 
 
 def prepare(name: str, params: dict[str, Any] | pydantic.BaseModel | None, case: CaseSetup) -> PreparedModel:
