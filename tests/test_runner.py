@@ -1,0 +1,413 @@
+"""Study runner end to end: HDF5 read back with h5py, failures, reruns, process pool, Dask,
+a run killed mid-study that resumes."""
+
+from __future__ import annotations
+
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+import tomllib
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+
+from propagator.study.config import case_from_toml, load_study, parse_study
+from propagator.study.hdf5_store import open_for_reading, read_case
+from propagator.study.runner import initial_state_gcrf, itrf_states, run_study
+
+ROOT = Path(__file__).resolve().parents[1]
+
+TINY = """
+[study]
+name = "tiny"
+plots = false
+
+[defaults]
+epoch = "2024-03-20T12:00:00 UTC"
+duration_s = 7200.0
+
+[defaults.initial_state]
+kind = "keplerian"
+semi_major_axis_m = 7000000.0
+eccentricity = 0.001
+inclination_deg = 98.0
+raan_deg = 10.0
+arg_perigee_deg = 0.0
+mean_anomaly_deg = 0.0
+
+[[defaults.forces]]
+model = "central_gravity"
+
+[[defaults.forces]]
+model = "zonal_j2"
+
+[defaults.output]
+step_s = 120.0
+
+[cases.leo-a]
+
+[cases.leo-b]
+initial_state.raan_deg = 50.0
+output = { step_s = 120.0, itrf = true, elements = true, accelerations = true, stm = true, record_events = ["ascending_node"] }
+
+# perigee 6300 km, below the surface: starts at apogee, stops at the altitude event
+[cases.low]
+initial_state.eccentricity = 0.1
+initial_state.mean_anomaly_deg = 180.0
+"""
+
+ARRAYS = ("time_s", "state_gcrf", "state_itrf", "elements_osculating", "stm")
+
+
+def write_study(tmp: Path, text: str = TINY, name: str = "tiny.toml") -> Path:
+    p = tmp / name
+    p.write_text(text)
+    return p
+
+
+def same_case(a: dict, b: dict) -> bool:
+    if a["status"] != b["status"]:
+        return False
+    for k in ARRAYS:
+        if (a[k] is None) != (b[k] is None) or (a[k] is not None and not np.array_equal(a[k], b[k])):
+            return False
+    if set(a["accelerations"]) != set(b["accelerations"]):
+        return False
+    return all(np.array_equal(a["accelerations"][m], b["accelerations"][m]) for m in a["accelerations"])
+
+
+@pytest.fixture(scope="module")
+def inline_run(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("inline")
+    study = load_study(write_study(tmp))
+    report = run_study(study, output=tmp / "inline.h5", workers=1, progress=False)
+    return study, report, tmp / "inline.h5"
+
+
+# --------------------------------------------------------------------------------------
+# one process
+# --------------------------------------------------------------------------------------
+def test_inline_run_file_contents(inline_run):
+    study, report, path = inline_run
+    assert sorted(report.complete) == ["leo-a", "leo-b"] and list(report.failed) == ["low"]
+    with h5py.File(path, "r") as f:
+        assert f.attrs["study_name"] == "tiny"
+        g = f["cases/leo-b"]
+        assert g.attrs["status"] == "complete"
+        assert g.attrs["epoch_iso"] == "2024-03-20T12:00:00 UTC" and g.attrs["epoch_scale"] == "UTC"
+        t = g["time_s"][()]
+        assert np.array_equal(t, 120.0 * np.arange(61))  # 0..7200 s every 120 s, no duplicates
+        for ds in ("state_gcrf", "state_itrf", "elements_osculating"):
+            assert g[ds].shape == (61, 6)
+        assert g["stm"].shape == (61, 6, 6) and set(g["acceleration"]) == {"central_gravity", "zonal_j2"}
+        assert g["integrator_statistics"].attrs["nfev"] > 0
+        back = case_from_toml("leo-b", g.attrs["case_config_toml"])
+        assert back.config == study.case("leo-b").config
+
+
+def test_inline_states_equal_a_direct_propagate_call(inline_run):
+    """The runner is wiring only: its states are bitwise those of propagate()."""
+    from propagator.integrators.settings import IntegratorSettings, OutputGrid
+    from propagator.propagate import propagate
+    from propagator.timescales import Epoch
+
+    study, _, path = inline_run
+    case = study.case("leo-a")
+    epoch = Epoch.from_iso(case.config.epoch)
+    res = propagate(epoch.to("TT"), initial_state_gcrf(case, epoch), forces=case.forces, duration=7200.0,
+                    settings=IntegratorSettings(), output=OutputGrid(times_s=120.0 * np.arange(61)))
+    d = read_case(path, "leo-a")
+    assert np.array_equal(d["state_gcrf"], res.states)
+
+
+def test_optional_outputs_agree_with_their_reference_functions(inline_run):
+    from propagator.constants import GM_EARTH
+    from propagator.elements import cart_to_kep
+    from propagator.frames import gcrf_to_itrf
+    from propagator.timescales import Epoch
+
+    _, _, path = inline_run
+    d = read_case(path, "leo-b")
+    st = d["state_gcrf"]
+    assert np.array_equal(d["elements_osculating"], cart_to_kep(st))
+    # ITRF: fast interpolated rotation vs the full pyerfa rotation of propagator.frames
+    # (IERS Conventions 2010 ch. 5 via ERFA) at a few samples
+    epoch = Epoch.from_iso(d["epoch"]["iso"]).to("TT")
+    for i in (0, 17, 60):
+        r, v = gcrf_to_itrf(epoch + float(d["time_s"][i]), st[i, :3], st[i, 3:])
+        assert np.max(np.abs(d["state_itrf"][i, :3] - r)) < 1e-6  # m
+        assert np.max(np.abs(d["state_itrf"][i, 3:] - v)) < 1e-9  # m/s
+    # per-model acceleration: central term is Newton's -GM r / |r|^3
+    r = st[:, :3]
+    newton = -GM_EARTH * r / np.linalg.norm(r, axis=1)[:, None] ** 3
+    np.testing.assert_allclose(d["accelerations"]["central_gravity"], newton, rtol=1e-13, atol=0)
+    # STM starts at the identity; ascending node events: z = 0 crossing upward
+    assert np.array_equal(d["stm"][0], np.eye(6))
+    ev = d["events"]
+    assert ev["kind"] and set(ev["kind"]) == {"ascending_node"}
+    assert np.all(np.abs(ev["state_gcrf"][:, 2]) < 1e-3) and np.all(ev["state_gcrf"][:, 5] > 0)
+
+
+def test_impossible_case_fails_alone_with_its_reason(inline_run):
+    _, report, path = inline_run
+    assert "fell below" in report.failed["low"]
+    d = read_case(path, "low")
+    assert d["status"] == "failed" and "fell below 6378137.0 m" in d["attrs"]["error"]
+    # data up to the stop are kept; the stop is an event at |r| = WGS84 a
+    assert 0 < d["time_s"].size < 61 and d["events"]["kind"] == ["stop_min_altitude"]
+    assert abs(np.linalg.norm(d["events"]["state_gcrf"][0, :3]) - 6378137.0) < 1e-3
+    for name in ("leo-a", "leo-b"):
+        assert read_case(path, name)["status"] == "complete"
+
+
+def test_rerun_skips_complete_cases_and_recomputes_changed_ones(inline_run, tmp_path):
+    study, _, path = inline_run
+    out = tmp_path / "copy.h5"
+    out.write_bytes(path.read_bytes())
+    before = read_case(out, "leo-a")
+    again = run_study(study, output=out, workers=1, progress=False)
+    assert sorted(again.skipped) == ["leo-a", "leo-b"] and list(again.failed) == ["low"]
+    assert same_case(before, read_case(out, "leo-a"))
+    changed = parse_study(tomllib.loads(TINY.replace("[cases.leo-a]", "[cases.leo-a]\noutput.step_s = 600.0")))
+    third = run_study(changed, output=out, workers=1, progress=False)
+    assert third.recomputed_changed == ["leo-a"] and third.skipped == ["leo-b"]
+    assert read_case(out, "leo-a")["time_s"].size == 13
+
+
+def test_fresh_recomputes_everything_and_segment_change_counts_as_a_change(inline_run, tmp_path):
+    study, _, path = inline_run
+    out = tmp_path / "copy.h5"
+    out.write_bytes(path.read_bytes())
+    fresh = run_study(study, output=out, workers=1, progress=False, fresh=True)
+    assert not fresh.skipped and sorted(fresh.complete) == ["leo-a", "leo-b"]
+    assert same_case(read_case(path, "leo-a"), read_case(out, "leo-a"))  # same numbers again
+    seg = parse_study(tomllib.loads(TINY.replace('name = "tiny"', 'name = "tiny"\nsegment_days = 0.05')))
+    rep = run_study(seg, output=out, workers=1, progress=False)
+    assert sorted(rep.recomputed_changed) == ["leo-a", "leo-b"]
+
+
+def test_stop_request_between_segments_marks_the_case_interrupted(tmp_path):
+    from propagator.study.hdf5_store import StudyStore
+    from propagator.study.runner import execute_case
+
+    study = parse_study(tomllib.loads(TINY))
+    calls = []
+
+    def stop_after_two_segments() -> bool:
+        calls.append(1)
+        return len(calls) > 2
+
+    with StudyStore(tmp_path / "stop.h5", mode="w") as store:
+        outcome = execute_case(study.case("leo-a"), store, segment_s=1800.0,
+                               stop_requested=stop_after_two_segments)
+    assert outcome.status == "interrupted" and "segment 3/4" in outcome.error
+    d = read_case(tmp_path / "stop.h5", "leo-a")
+    assert d["status"] == "interrupted"
+    assert np.array_equal(d["time_s"], 120.0 * np.arange(31))  # two segments (0..3600 s) kept
+    # the next run recomputes it (only complete cases are skipped)
+    rep = run_study(study, output=tmp_path / "stop.h5", workers=1, progress=False)
+    assert "leo-a" in rep.complete and read_case(tmp_path / "stop.h5", "leo-a")["status"] == "complete"
+
+
+def test_segments_continue_the_arc_and_chain_the_stm(tmp_path):
+    text = TINY.replace('name = "tiny"', 'name = "seg"\nsegment_days = 0.0173611111111111')  # ~25 min
+    text = text[:text.index("[cases.leo-a]")] + "[cases.one]\noutput = { step_s = 120.0, stm = true }\n"
+    seg = run_study(parse_study(tomllib.loads(text)), output=tmp_path / "seg.h5", workers=1, progress=False)
+    whole = run_study(parse_study(tomllib.loads(text.replace("segment_days = 0.0173611111111111", ""))),
+                      output=tmp_path / "whole.h5", workers=1, progress=False)
+    assert seg.complete == whole.complete == ["one"]
+    a, b = read_case(tmp_path / "seg.h5", "one"), read_case(tmp_path / "whole.h5", "one")
+    assert a["integrator_statistics"]["segments"] == 5 and b["integrator_statistics"]["segments"] == 1
+    assert np.array_equal(a["time_s"], b["time_s"])  # boundaries neither lost nor repeated
+    # different step sequences: agreement at the integration-error level (common practice)
+    assert np.max(np.abs(a["state_gcrf"][:, :3] - b["state_gcrf"][:, :3])) < 1e-4
+    scale = np.max(np.abs(b["stm"]), axis=0) + 1e-300
+    assert np.max(np.abs(a["stm"] - b["stm"]) / scale) < 1e-7
+
+
+@pytest.mark.parametrize("duration,step", [(7200.0, 120.0), (7200.0, 7.0), (-86400.0, 300.0),
+                                           (31536000.0, 10.0), (-1000.3, 0.7)])
+def test_segment_grids_join_into_the_whole_grid(duration, step):
+    """Segments produce the output grid piecewise, bitwise equal to OutputGrid.times and
+    with no sample lost or repeated at the boundaries."""
+    from propagator.study.runner import _segments, _SegmentGrid, output_times
+
+    s = parse_study(tomllib.loads(TINY.replace("duration_s = 7200.0", f"duration_s = {duration}")
+                                  .replace("step_s = 120.0", f"step_s = {step}")))
+    case = s.case("leo-a")
+    grid, whole = _SegmentGrid(case, duration), output_times(case, duration)
+    for seg in ((86400.0, 1500.0, 333.3) if abs(duration) < 1e6 else (86400.0, 777777.7)):
+        parts = [grid.between(a, b, k == 0) for k, (a, b) in enumerate(_segments(duration, seg))]
+        assert np.array_equal(np.concatenate(parts), whole)
+
+
+def test_initial_states_from_each_representation():
+    from propagator.elements import kep_to_cart, mean_to_true
+    from propagator.frames import itrf_to_gcrf
+    from propagator.timescales import Epoch
+
+    base = TINY[:TINY.index("[cases.leo-a]")]
+    d2r = math.pi / 180
+    # h = e sin(argp + RAAN), k = e cos(argp + RAAN), p = tan(i/2) sin RAAN, q = tan(i/2) cos RAAN
+    # (Broucke & Cefola 1972) for e = 0.01, i = 55, RAAN = 30, argp = 40 deg
+    hkpq = (0.01 * math.sin(70 * d2r), 0.01 * math.cos(70 * d2r), math.tan(27.5 * d2r) * math.sin(30 * d2r),
+            math.tan(27.5 * d2r) * math.cos(30 * d2r))
+    s = parse_study(tomllib.loads(base + ("""
+[cases.kep]
+initial_state = { kind = "keplerian", semi_major_axis_m = 26560000.0, eccentricity = 0.01, inclination_deg = 55.0, raan_deg = 30.0, arg_perigee_deg = 40.0, mean_anomaly_deg = 50.0 }
+[cases.equ-true]
+initial_state = { kind = "equinoctial", semi_major_axis_m = 26560000.0, h = %r, k = %r, p = %r, q = %r, true_longitude_deg = 0.0 }
+
+[cases.itrf]
+initial_state = { kind = "cartesian", frame = "ITRF", position_m = [7000000.0, 0.0, 0.0], velocity_m_s = [0.0, 1000.0, 7400.0] }
+""" % hkpq)))
+    epoch = Epoch.from_iso("2024-03-20T12:00:00 UTC")
+    kep = initial_state_gcrf(s.case("kep"), epoch)
+    nu = float(mean_to_true(50 * d2r, 0.01))
+    assert np.array_equal(kep, kep_to_cart([26560000.0, 0.01, 55 * d2r, 30 * d2r, 40 * d2r, nu]))
+    # equinoctial with the same e, i, RAAN, argp (h, k, p, q computed from them) and true
+    # longitude = RAAN + argp + nu: the same state (Broucke & Cefola 1972 definitions)
+    nu2 = (0.0 - 70.0) * d2r
+    ref = kep_to_cart([26560000.0, 0.01, 55 * d2r, 30 * d2r, 40 * d2r, nu2 % (2 * math.pi)])
+    np.testing.assert_allclose(initial_state_gcrf(s.case("equ-true"), epoch), ref, rtol=0, atol=1e-6)
+    r, v = itrf_to_gcrf(epoch, [7000000.0, 0.0, 0.0], [0.0, 1000.0, 7400.0])
+    assert np.array_equal(initial_state_gcrf(s.case("itrf"), epoch), np.concatenate([r, v]))
+
+
+def test_fast_itrf_rotation_matches_pyerfa_over_a_day():
+    """itrf_states (spline-interpolated rotation ingredients) vs propagator.frames (full
+    IERS 2010 / ERFA rotation at every sample), MEO radius, one day."""
+    from propagator.frames import gcrf_to_itrf
+    from propagator.timescales import Epoch
+
+    epoch = Epoch.from_iso("2024-06-01T00:00:00 TT")
+    t = np.linspace(0.0, 86400.0, 7)
+    rng = np.random.default_rng(1)
+    st = np.hstack([rng.normal(size=(7, 3)) * 2.66e7 / math.sqrt(3), rng.normal(size=(7, 3)) * 2.2e3])
+    got = itrf_states(epoch, t, st)
+    for i in range(t.size):
+        r, v = gcrf_to_itrf(epoch + float(t[i]), st[i, :3], st[i, 3:])
+        assert np.max(np.abs(got[i, :3] - r)) < 1e-5 and np.max(np.abs(got[i, 3:] - v)) < 1e-9
+
+
+# --------------------------------------------------------------------------------------
+# local processes and Dask give the same numbers
+# --------------------------------------------------------------------------------------
+def test_process_pool_gives_identical_numbers(inline_run, tmp_path):
+    study, _, path = inline_run
+    report = run_study(study, output=tmp_path / "pool.h5", workers=2, progress=False)
+    assert report.where == "2 local worker processes"
+    assert sorted(report.complete) == ["leo-a", "leo-b"] and list(report.failed) == ["low"]
+    for c in study.cases:
+        assert same_case(read_case(path, c.name), read_case(tmp_path / "pool.h5", c.name)), c.name
+    assert not (tmp_path / "pool.h5.parts").exists()
+
+
+def test_dask_local_cluster_gives_identical_numbers(inline_run, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    study, _, path = inline_run
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        report = run_study(study, output=tmp_path / "dask.h5", scheduler=cluster.scheduler_address,
+                           progress=False)
+    assert report.where.startswith("Dask cluster")
+    assert sorted(report.complete) == ["leo-a", "leo-b"] and list(report.failed) == ["low"]
+    for c in study.cases:
+        assert same_case(read_case(path, c.name), read_case(tmp_path / "dask.h5", c.name)), c.name
+
+
+def test_unreachable_scheduler_is_reported(inline_run, tmp_path, monkeypatch):
+    pytest.importorskip("distributed")
+    from propagator.study import runner
+    from propagator.study.runner import ClusterUnavailableError
+
+    monkeypatch.setattr(runner, "CONNECT_TIMEOUT_S", 1.0)
+    study, _, _ = inline_run
+    with pytest.raises(ClusterUnavailableError, match="cannot reach"):
+        run_study(study, output=tmp_path / "x.h5", scheduler="tcp://127.0.0.1:9", progress=False)
+
+
+# --------------------------------------------------------------------------------------
+# killed mid-study, then resumed: nothing lost, nothing duplicated
+# --------------------------------------------------------------------------------------
+# six ~1 s cases (30-day LEO arcs, 8x8 field), written in 2-day segments
+SLOW = TINY[:TINY.index("[cases.leo-a]")].replace('name = "tiny"', 'name = "killme"\nsegment_days = 2.0') \
+    .replace('duration_s = 7200.0', 'duration_days = 30.0') \
+    .replace('model = "zonal_j2"', 'model = "gravity_field"\ndegree = 8') + "".join(
+        f"\n[cases.sat-{k}]\ninitial_state.raan_deg = {10.0 * k}\n" for k in range(6))
+
+
+def _statuses(path: Path) -> dict[str, str]:
+    try:
+        with open_for_reading(path) as f:
+            return {n: str(g.attrs.get("status", "")) for n, g in f["cases"].items()}
+    except (OSError, KeyError, RuntimeError, ValueError):  # a write in progress
+        return {}
+
+
+def _run_cli(study: Path, out: Path, workers: int) -> subprocess.Popen:
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    return subprocess.Popen([sys.executable, "-m", "propagator.cli", "run", str(study), "--output", str(out),
+                             "--workers", str(workers), "--quiet", "--no-plots"],
+                            cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+
+
+def _kill_when_some_complete(proc: subprocess.Popen, out: Path, sig: int, n_complete: int = 2,
+                             timeout: float = 900.0) -> dict[str, str]:
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < timeout:
+        st = _statuses(out) if out.exists() else {}
+        if sum(v == "complete" for v in st.values()) >= n_complete:
+            proc.send_signal(sig)
+            break
+        if proc.poll() is not None:
+            pytest.fail(f"the run ended before it could be killed:\n{proc.stdout.read()}")
+        time.sleep(0.02)
+    proc.wait(timeout=120)
+    return _statuses(out)
+
+
+def _check_resumed(study_path: Path, out: Path, before: dict[str, dict]) -> None:
+    study = load_study(study_path)
+    report = run_study(study, output=out, workers=1, progress=False)
+    assert report.ok and sorted(report.skipped) == sorted(before)
+    names = [c.name for c in study.cases]
+    with h5py.File(out, "r") as f:
+        assert sorted(f["cases"]) == sorted(names)  # nothing duplicated or left over
+    for n in names:
+        d = read_case(out, n)
+        assert d["status"] == "complete"
+        assert np.array_equal(d["time_s"], 120.0 * np.arange(30 * 720 + 1))  # every sample once
+        if n in before:
+            assert same_case(before[n], d)  # completed cases untouched by the resume
+
+
+def test_sigterm_mid_study_then_resume(tmp_path):
+    study_path = write_study(tmp_path, SLOW, "killme.toml")
+    out = tmp_path / "killme.h5"
+    proc = _run_cli(study_path, out, workers=2)
+    st = _kill_when_some_complete(proc, out, signal.SIGTERM)
+    text = proc.stdout.read()
+    assert proc.returncode == 130, text
+    assert "interrupted" in text and "Stopped by SIGTERM" in text
+    assert not any(v == "running" for v in st.values()), st  # the file was closed cleanly
+    done = [n for n, v in st.items() if v == "complete"]
+    assert 2 <= len(done) < 6
+    _check_resumed(study_path, out, {n: read_case(out, n) for n in done})
+
+
+@pytest.mark.slow
+def test_sigkill_mid_study_then_resume(tmp_path):
+    study_path = write_study(tmp_path, SLOW, "killme.toml")
+    out = tmp_path / "killme.h5"
+    proc = _run_cli(study_path, out, workers=1)
+    st = _kill_when_some_complete(proc, out, signal.SIGKILL)
+    assert proc.returncode == -signal.SIGKILL
+    done = [n for n, v in st.items() if v == "complete"]
+    assert 2 <= len(done) < 6
+    _check_resumed(study_path, out, {n: read_case(out, n) for n in done})

@@ -1,0 +1,234 @@
+"""Batch studies: throughput of the study runner and memory of streamed long arcs.
+
+    python validation/bench_batch.py [--quick] --json PATH
+
+JSON keys:
+
+* ``cases_per_s_per_core``: end-to-end throughput of one core running 1-day MEO cases
+  (point mass + gravity field 12x12 + Sun + Moon + SRP, 5-minute output, osculating
+  elements, HDF5 written), through ``propagator.study.runner`` in one process, after a
+  warm-up case that absorbs every compilation (numba cache load, element conversions).
+  ``cases_per_s_pool`` / ``pool_workers``: the same cases on a local process pool, start
+  of the workers included (their own warm-up is not excluded; informative only).
+  ``gravity_degree``: 12 with the project's EGM96 degree-120 extract
+  (``../shared/data/gravity/EGM96_deg120.gfc``), else 8 (shipped file).
+* ``leo_year_peak_rss_mb`` / ``leo_year_wall_s``: peak resident memory (``resource.
+  getrusage(RUSAGE_SELF).ru_maxrss`` of a fresh subprocess) and run time of a 1-year LEO
+  case (700 km sun-synchronous, 8x8 field + Sun + Moon + SRP) at 10 s output
+  (3.15 million states) written in 1-day segments.  ``--quick`` runs 30 days instead
+  and scales the wall time by 365/30 (``leo_year_is_scaled`` true); the memory is
+  reported as measured, since streamed output keeps it independent of the arc length —
+  which the check below verifies.
+* ``leo_run_peak_rss_mb``: the peak during the measured run alone (``VmHWM`` of
+  ``/proc/self/status`` after resetting it through ``/proc/self/clear_refs`` once the
+  warm-up case has compiled everything; Linux only).
+* ``rss_vs_arc``: [{days, samples, peak_rss_mb, run_peak_rss_mb, wall_s, file_mb}] for
+  several arc lengths; figure ``batch_memory_vs_arc.png``.
+
+Checks: every benchmark case completes; the run's peak RSS for the longest arc exceeds
+that of the shortest by less than 64 MB while the number of samples grows by 10x or more
+(streamed output; bound chosen as common practice: far below the ~150 MB per 1-year arc
+that holding the trajectory in memory would take).
+
+Timings are wall clock on a shared machine; compare them only within one run.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import textwrap
+import time
+import tomllib
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import ROOT, start  # noqa: E402
+
+FIELD_120 = ROOT.parent / "shared" / "data" / "gravity" / "EGM96_deg120.gfc"
+
+MEO_STUDY = """
+[study]
+name = "bench-meo"
+plots = false
+
+[defaults]
+epoch = "2026-03-20T00:00:00 UTC"
+duration_days = 1.0
+initial_state = {{ kind = "keplerian", semi_major_axis_m = 26560000.0, eccentricity = 0.002, inclination_deg = 55.0, raan_deg = 0.0, arg_perigee_deg = 30.0, mean_anomaly_deg = 0.0 }}
+spacecraft = {{ mass_kg = 1100.0, srp_area_m2 = 18.0, cr = 1.25 }}
+forces = [{{ model = "central_gravity" }}, {gravity}, {{ model = "sun_gravity" }}, {{ model = "moon_gravity" }}, {{ model = "solar_radiation" }}]
+output = {{ step_s = 300.0, elements = true }}
+
+[cases.warm-up]
+duration_days = 0.1
+
+[[sweeps]]
+name = "meo"
+grid."initial_state.raan_deg" = {{ first = 0.0, last = {last}, count = {n} }}
+"""
+
+LEO_STUDY = """
+[study]
+name = "bench-leo"
+plots = false
+segment_days = 1.0
+
+[defaults]
+epoch = "2025-01-01T00:00:00 UTC"
+initial_state = { kind = "keplerian", semi_major_axis_m = 7078137.0, eccentricity = 0.001, inclination_deg = 98.27, raan_deg = 177.0, arg_perigee_deg = 90.0, mean_anomaly_deg = 0.0 }
+spacecraft = { mass_kg = 450.0, srp_area_m2 = 4.5, cr = 1.4 }
+forces = [{ model = "central_gravity" }, { model = "gravity_field", degree = 8 }, { model = "sun_gravity" }, { model = "moon_gravity" }, { model = "solar_radiation" }]
+output = { step_s = 10.0 }
+
+[cases.warm-up]
+duration_s = 600.0
+"""
+
+_CHILD = textwrap.dedent("""
+    import json, resource, sys, time, tomllib
+    sys.path.insert(0, {root!r})
+    from propagator.study.config import parse_study
+    from propagator.study.runner import run_study
+    text = {text!r}
+    warm = parse_study(tomllib.loads(text))
+    run_study(warm, output={out!r} + ".warm.h5", workers=1, progress=False, plots=False)
+    def hwm_kb():
+        try:
+            for line in open("/proc/self/status"):
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1])
+        except OSError:
+            pass
+        return -1
+    try:  # Linux >= 4.0: writing 5 resets the peak RSS (VmHWM) to the current RSS
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+        reset = True
+    except OSError:
+        reset = False
+    rss_before = hwm_kb()
+    study = parse_study(tomllib.loads(text.replace("[cases.warm-up]\\nduration_s = 600.0",
+                                                   "[cases.leo]\\nduration_days = {days}")))
+    t0 = time.perf_counter()
+    rep = run_study(study, output={out!r}, workers=1, progress=False, plots=False)
+    wall = time.perf_counter() - t0
+    print(json.dumps({{"wall_s": wall, "ok": rep.complete == ["leo"], "failed": rep.failed,
+                       "rss_kb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
+                       "run_hwm_kb": hwm_kb() if reset else -1, "rss_before_kb": rss_before}}))
+""")
+
+
+def _meo_study(n: int) -> str:
+    grav = ('{ model = "gravity_field", degree = 12, order = 12, field_file = "%s" }' % FIELD_120
+            if FIELD_120.is_file() else '{ model = "gravity_field", degree = 8 }')
+    return MEO_STUDY.format(gravity=grav, last=360.0 * (n - 1) / n, n=n)
+
+
+def _throughput(n_cases: int, tmp: Path) -> dict:
+    from propagator.study.config import parse_study
+    from propagator.study.runner import run_study
+
+    study = parse_study(tomllib.loads(_meo_study(n_cases)))
+    warm = [c for c in study.cases if c.name == "warm-up"]
+    cases = [c for c in study.cases if c.name != "warm-up"]
+    study.cases = warm
+    run_study(study, output=tmp / "warm.h5", workers=1, progress=False, plots=False)
+    study.cases = cases
+    t0 = time.perf_counter()
+    rep1 = run_study(study, output=tmp / "inline.h5", workers=1, progress=False, plots=False)
+    wall1 = time.perf_counter() - t0
+    n_pool = max(2, min(os.cpu_count() or 2, 4))
+    t0 = time.perf_counter()
+    rep2 = run_study(study, output=tmp / "pool.h5", workers=n_pool, progress=False, plots=False)
+    wall2 = time.perf_counter() - t0
+    return {"n_cases": len(cases), "inline_wall_s": wall1, "pool_wall_s": wall2, "pool_workers": n_pool,
+            "complete": len(rep1.complete) == len(cases) and len(rep2.complete) == len(cases)}
+
+
+def _leo(days: float, tmp: Path) -> dict:
+    out = tmp / f"leo_{days:g}d.h5"
+    code = _CHILD.format(root=str(ROOT), text=LEO_STUDY, out=str(out), days=days)
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT, timeout=7200)
+    if p.returncode != 0:
+        raise RuntimeError(f"LEO subprocess failed ({days} d):\n{p.stderr[-3000:]}")
+    res = json.loads(p.stdout.strip().splitlines()[-1])
+    run_peak = res["run_hwm_kb"] / 1024.0 if res["run_hwm_kb"] > 0 else float("nan")
+    return {"days": days, "samples": int(round(days * 8640)) + 1, "peak_rss_mb": res["rss_kb"] / 1024.0,
+            "run_peak_rss_mb": run_peak, "rss_after_warmup_mb": res["rss_before_kb"] / 1024.0,
+            "wall_s": res["wall_s"], "file_mb": out.stat().st_size / 2 ** 20, "ok": bool(res["ok"])}
+
+
+def main() -> int:
+    rep = start(__file__, __doc__.splitlines()[0])
+    quick = rep.quick
+    tmp = Path(tempfile.mkdtemp(prefix="longarc-bench-batch-"))
+    degree = 12 if FIELD_120.is_file() else 8
+
+    tp = _throughput(16 if quick else 48, tmp)
+    per_core = tp["n_cases"] / tp["inline_wall_s"]
+    rep.values.update({"cases_per_s_per_core": per_core, "cases_per_s_pool": tp["n_cases"] / tp["pool_wall_s"],
+                       "pool_workers": tp["pool_workers"], "throughput_cases": tp["n_cases"],
+                       "gravity_degree": degree})
+    rep.check("batch/I-O", "benchmark MEO cases complete (inline and pool)", "common practice",
+              "yes" if tp["complete"] else "no", tolerance="all complete", passed=tp["complete"])
+
+    arcs = [3.0, 10.0, 30.0] if quick else [3.0, 30.0, 90.0, 365.0]
+    rows = [_leo(d, tmp) for d in arcs]
+    longest = rows[-1]
+    year_wall = longest["wall_s"] * (365.0 / longest["days"])
+    rep.values.update({"leo_year_peak_rss_mb": longest["peak_rss_mb"], "leo_year_wall_s": year_wall,
+                       "leo_year_is_scaled": longest["days"] != 365.0, "leo_year_measured_days": longest["days"],
+                       "rss_vs_arc": rows})
+    rep.check("batch/I-O", "long LEO arcs complete", "common practice",
+              "yes" if all(r["ok"] for r in rows) else "no", tolerance="all complete",
+              passed=all(r["ok"] for r in rows))
+    key = "run_peak_rss_mb" if all(r["run_peak_rss_mb"] == r["run_peak_rss_mb"] for r in rows) else "peak_rss_mb"
+    rep.values["leo_run_peak_rss_mb"] = longest[key]
+    growth = longest[key] - rows[0][key]
+    rep.check("batch/I-O", f"peak RSS of the run, growth {rows[0]['days']:g} d -> {longest['days']:g} d at 10 s "
+              "output (streamed HDF5)", "common practice (bounded-memory design)", growth,
+              tolerance="< 64 MB", passed=growth < 64.0, unit="MB")
+
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+
+        fig, ax = plt.subplots(figsize=(7, 4.5))
+        d = [r["days"] for r in rows]
+        ax.plot(d, [r["peak_rss_mb"] for r in rows], "o-", label="peak RSS of the process [MB] (ru_maxrss)")
+        ax.plot(d, [r[key] for r in rows], "^-", label="peak RSS during the measured run [MB] (VmHWM)")
+        ax.plot(d, [r["file_mb"] for r in rows], "s--", label="HDF5 file size [MB]")
+        ax.set_xscale("log")
+        ax.set_xlabel("arc length [days] (LEO, 10 s output, 1-day segments)")
+        ax.set_ylabel("MB")
+        ax.grid(True, which="both", alpha=0.3)
+        ax.legend()
+        ax.set_title("Streamed output: memory stays flat while the data grow")
+        fig.tight_layout()
+        png = rep.out_dir / "batch_memory_vs_arc.png"
+        fig.savefig(png, dpi=110)
+        plt.close(fig)
+        rep.figure(png, "Peak resident memory and output size against arc length (streamed HDF5 output)")
+    except Exception as exc:  # a figure never hides the numbers
+        print(f"figure skipped: {exc}")
+
+    print(f"\n{'quantity':<38} {'value':>12}")
+    print(f"{'cases per second per core (1-d MEO)':<38} {per_core:12.3f}")
+    print(f"{'cases per second, pool of ' + str(tp['pool_workers']):<38} {rep.values['cases_per_s_pool']:12.3f}")
+    print(f"{'1-year LEO peak RSS [MB]':<38} {longest['peak_rss_mb']:12.1f}")
+    print(f"{'1-year LEO wall [s]' + (' (scaled)' if longest['days'] != 365 else ''):<38} {year_wall:12.1f}")
+    for r in rows:
+        print(f"  {r['days']:6g} d  {r['samples']:>9d} states  RSS {r['peak_rss_mb']:7.1f} MB "
+              f"(run {r['run_peak_rss_mb']:7.1f} MB)  "
+              f"wall {r['wall_s']:7.1f} s  file {r['file_mb']:7.1f} MB")
+    return rep.finish()
+
+
+if __name__ == "__main__":
+    sys.exit(main())
