@@ -93,6 +93,15 @@ def _cmd_check(args: argparse.Namespace) -> int:
                       Text(", ".join(n for n, _ in c.forces)), Text(sweep))
     con.print(table)
     con.print(f"output file: {study.output_path(args.output)}")
+    problems = [msg for c in study.cases for msg in c.preflight()]
+    if problems:
+        err = _console(stderr=True)
+        err.print(Text(f"{len(problems)} problem(s) would stop case(s) before integration "
+                       "(the others would still run):", style="red"))
+        for msg in problems:
+            err.print(Text(f"  - {msg}", style="red"))
+        return EXIT_BAD_INPUT
+    con.print("Every force model was prepared for every case.")
     con.print("The study file is valid; nothing was run.")
     return EXIT_OK
 

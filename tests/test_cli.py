@@ -101,6 +101,32 @@ def test_check_reports_config_errors_with_key_paths(tmp_path, capsys):
     assert run(capsys, "check", tmp_path / "missing.toml")[0] == cli.EXIT_BAD_CONFIG
 
 
+def test_check_prepares_force_models_per_case(tmp_path, capsys):
+    """A missing .gfc file, a degree above the file's maximum, zonal_j2 + gravity_field,
+    and an epoch outside every ephemeris are found by `check`, before any run."""
+    from forcemodels.gfc import DEFAULT_FIELD_FILE, read_gfc
+
+    nmax = read_gfc(DEFAULT_FIELD_FILE).max_degree
+    study = tmp_path / "s.toml"
+    study.write_text(STUDY.replace('forces = [{ model = "central_gravity" }, { model = "zonal_j2" }]',
+                                   'forces = [{ model = "central_gravity" }, { model = "gravity_field", degree = 4 }]')
+                     + '\n[cases.nofile]\nforces = [{ model = "central_gravity" }, '
+                       '{ model = "gravity_field", degree = 4, field_file = "no/such/field.gfc" }]\n'
+                     + f'\n[cases.toohigh]\nforces = [{{ model = "gravity_field", degree = {nmax + 1} }}]\n'
+                     + '\n[cases.future]\nepoch = "2600-01-01T00:00:00 TT"\n'
+                     + 'forces = [{ model = "central_gravity" }, { model = "moon_gravity" }]\n')
+    code, out, err = run(capsys, "check", study)
+    assert code == cli.EXIT_BAD_INPUT, err
+    assert "case 'nofile', force model 'gravity_field'" in err and "field.gfc" in err
+    assert "case 'toohigh', force model 'gravity_field'" in err and str(nmax + 1) in err and str(nmax) in err
+    assert "case 'future', force model 'moon_gravity'" in err
+    for fine in ("'leo-a'", "'leo-b'", "'low'"):
+        assert f"case {fine}" not in err
+    study.write_text(STUDY.replace('{ model = "zonal_j2" }', '{ model = "zonal_j2" }, { model = "gravity_field", degree = 4 }'))
+    code, _, err = run(capsys, "check", study)
+    assert code == cli.EXIT_BAD_CONFIG and "cannot be selected together" in err
+
+
 def test_models_lists_registered_models_and_parameters(capsys):
     from forcemodels import registry
 

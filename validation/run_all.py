@@ -26,7 +26,7 @@ from typing import Any
 HERE = Path(__file__).resolve().parent
 REPORT_DIR = HERE / "report"
 
-AREAS = ("frames and time", "elements", "force models", "integrators", "fitting", "batch and I/O")
+AREAS = ("frames and time", "elements", "force models", "integrators", "fitting", "batch/I-O")
 
 SCRIPTS: dict[str, str] = {
     "check_time_frames": "frames and time",
@@ -34,7 +34,7 @@ SCRIPTS: dict[str, str] = {
     "bench_forces": "force models",
     "bench_integrators": "integrators",
     "check_fitting": "fitting",
-    "bench_batch": "batch and I/O",
+    "bench_batch": "batch/I-O",
 }
 """Script name -> the area its failures are filed under when it produces no checks."""
 

@@ -510,6 +510,30 @@ class ResolvedCase:
         d["forces"] = [{"model": n, **copy.deepcopy(p)} for n, p in self.forces]
         return d
 
+    def preflight(self) -> list[str]:
+        """Problems that would stop this case before integration, found without running it.
+
+        Prepares every force model for the case's epoch and span exactly as the run does
+        (reads gravity-field files, checks the ephemeris span), so a missing or malformed
+        ``.gfc``, a degree above the file's maximum or an epoch outside every ephemeris is
+        reported by ``longarc check``.  Returns one message per problem (empty if none).
+        """
+        from forcemodels import registry
+        from propagator.timescales import Epoch
+
+        try:
+            epoch = Epoch.from_iso(self.config.epoch)
+            setup = registry.CaseSetup(epoch=epoch, t_start=0.0, t_end=self.config.duration_seconds())
+        except ValueError as exc:
+            return [f"case {self.name!r}: {exc}"]
+        problems = []
+        for name, params in self.forces:
+            try:
+                registry.prepare(name, params, setup)
+            except (ValueError, OSError) as exc:
+                problems.append(f"case {self.name!r}, force model {name!r}: {exc}")
+        return problems
+
     def force_dicts(self) -> list[dict[str, Any]]:
         """Force models as ``[{"model": name, **params}, ...]`` (for the output file)."""
         return [{"model": n, **copy.deepcopy(p)} for n, p in self.forces]
@@ -1240,6 +1264,12 @@ def _validate_forces(name: str, d: dict, config: Optional[CaseConfig], where, ba
                                  name)
             continue
         out.append((model_name, validated.model_dump(mode="json", exclude_none=True)))
+    if ok:
+        try:
+            registry.check_conflicts([n for n, _ in out])
+        except ValueError as exc:
+            problems.add(f"{where(('forces',))}: {exc}", name)
+            ok = False
     return out if ok else None
 
 
