@@ -308,6 +308,53 @@ def test_status_lifecycle_failures_and_import(tmp_path: Path) -> None:
             store.mark_failed("done", "x")
 
 
+def test_mark_interrupted_keeps_committed_samples_and_is_not_complete(tmp_path: Path) -> None:
+    path = tmp_path / "stop.h5"
+    t = T[:700]
+    ex = arc_extras(t)
+    with hs.StudyStore(path, study_name="s") as store:
+        write_case(store, "done", t)
+        w = store.begin_case("stopped", **EPOCH, case_config_toml=CONFIG_TOML, force_models=FORCE_MODELS)
+        w.append(t[:300], circular_arc(t[:300]), **slice_extras(ex, slice(0, 300)))
+        w.append(t[300:500], circular_arc(t[300:500]), **slice_extras(ex, slice(300, 500)))
+        w.add_events(t[[10, 20]], ["ascending_node", "descending_node"], circular_arc(t[[10, 20]]))
+        # a signal inside the next append / add_events: some datasets already grew, others not
+        g = store.file["cases/stopped"]
+        for key in ("time_s", "state_gcrf", "stm", "acceleration/srp"):
+            g[key].resize(503, axis=0)
+        g["events/time_s"].resize(3, axis=0)
+        store.mark_interrupted("stopped", "interrupted by SIGINT")
+        with pytest.raises(RuntimeError):  # the writer is closed
+            w.append(t[500:510], circular_arc(t[500:510]), **slice_extras(ex, slice(500, 510)))
+        store.mark_interrupted("never-started", "stop requested before the case began")
+        assert store.case_status("stopped") == "interrupted"
+        assert store.completed_cases() == {"done"}
+    d = hs.read_case(path, "stopped")
+    assert d["status"] == "interrupted"
+    assert d["attrs"]["error"] == "interrupted by SIGINT" and d["attrs"]["traceback"] == ""
+    assert d["attrs"]["finished_utc"].endswith("Z") and d["attrs"]["n_samples"] == 500
+    assert np.array_equal(d["time_s"], t[:500])
+    assert np.array_equal(d["state_gcrf"], circular_arc(t[:500]))
+    refs = {"state_itrf": ex["states_itrf"], "elements_osculating": ex["elements"], "stm": ex["stm"],
+            "sensitivity": ex["sensitivity"]}
+    for key, ref in refs.items():
+        assert np.array_equal(d[key], ref[:500]), key
+    assert {m: a.shape for m, a in d["accelerations"].items()} == {"central_gravity": (500, 3), "srp": (500, 3)}
+    assert d["events"]["kind"] == ["ascending_node", "descending_node"]
+    assert np.array_equal(d["events"]["time_s"], t[[10, 20]])
+    bare = hs.read_case(path, "never-started")
+    assert bare["status"] == "interrupted" and bare["attrs"]["n_samples"] == 0 and bare["time_s"] is None
+    assert bare["attrs"]["error"] == "stop requested before the case began"
+    # no open writer (a later process): only the label changes; read-only files refuse
+    with hs.StudyStore(path) as store:
+        store.mark_interrupted("done", "stopped while re-running it")
+        assert store.completed_cases() == set()
+    assert np.array_equal(hs.read_case(path, "done")["state_gcrf"], circular_arc(t))
+    with hs.StudyStore(path, mode="r") as store:
+        with pytest.raises(PermissionError):
+            store.mark_interrupted("done", "x")
+
+
 def test_bad_input_is_rejected(tmp_path: Path) -> None:
     with hs.StudyStore(tmp_path / "bad.h5") as store:
         w = store.begin_case("c", **EPOCH, case_config_toml="", force_models=[])

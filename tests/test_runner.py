@@ -214,6 +214,33 @@ def test_stop_request_between_segments_marks_the_case_interrupted(tmp_path):
     assert "leo-a" in rep.complete and read_case(tmp_path / "stop.h5", "leo-a")["status"] == "complete"
 
 
+def test_interrupted_case_is_recomputed_even_with_an_unchanged_configuration(tmp_path):
+    """Only 'complete' counts as done: an interrupted case whose stored configuration and
+    segment length equal the new run's is still recomputed (not skipped)."""
+    from propagator.study.hdf5_store import StudyStore
+    from propagator.study.runner import execute_case
+
+    text = TINY[:TINY.index("[cases.leo-a]")].replace('name = "tiny"', 'name = "tiny"\nsegment_days = 0.025')
+    study = parse_study(tomllib.loads(text + "[cases.leo-a]\n"))
+    segment_s = study.settings.segment_days * 86400.0  # 2160 s: 4 segments over 7200 s
+    out = tmp_path / "stop.h5"
+    calls = []
+    with StudyStore(out, study_name=study.name, mode="w") as store:
+        outcome = execute_case(study.case("leo-a"), store, segment_s=segment_s,
+                               stop_requested=lambda: calls.append(1) or len(calls) > 1)
+        assert outcome.status == "interrupted" and store.completed_cases() == set()
+    d = read_case(out, "leo-a")
+    assert d["status"] == "interrupted" and d["attrs"]["traceback"] == ""
+    assert d["attrs"]["error"] == "stop requested before segment 2/4 (t = 2160.0 s)"
+    assert np.array_equal(d["time_s"], 120.0 * np.arange(19))  # first segment 0..2160 s kept
+    assert d["attrs"]["case_config_toml"] == study.case("leo-a").to_toml()
+    assert d["attrs"]["segment_length_s"] == segment_s
+    rep = run_study(study, output=out, workers=1, progress=False)
+    assert rep.complete == ["leo-a"] and not rep.skipped and not rep.recomputed_changed
+    d = read_case(out, "leo-a")
+    assert d["status"] == "complete" and np.array_equal(d["time_s"], 120.0 * np.arange(61))
+
+
 def test_segments_continue_the_arc_and_chain_the_stm(tmp_path):
     text = TINY.replace('name = "tiny"', 'name = "seg"\nsegment_days = 0.0173611111111111')  # ~25 min
     text = text[:text.index("[cases.leo-a]")] + "[cases.one]\noutput = { step_s = 120.0, stm = true }\n"
@@ -293,6 +320,129 @@ def test_fast_itrf_rotation_matches_pyerfa_over_a_day():
     for i in range(t.size):
         r, v = gcrf_to_itrf(epoch + float(t[i]), st[i, :3], st[i, 3:])
         assert np.max(np.abs(got[i, :3] - r)) < 1e-5 and np.max(np.abs(got[i, 3:] - v)) < 1e-9
+
+
+# --------------------------------------------------------------------------------------
+# docs/hdf5_schema.md names everything a real run writes
+# --------------------------------------------------------------------------------------
+# 2-h LEO arcs with every output, every fit set (one of them impossible), events, a sweep
+# and a case that stops at the altitude limit
+SCHEMA_STUDY = TINY[:TINY.index("[[defaults.forces]]")].replace('name = "tiny"', 'name = "schema"\ndescription = "d"') + """
+[defaults.spacecraft]
+name = "PROBE-1"
+mass_kg = 200.0
+srp_area_m2 = 2.0
+cr = 1.3
+
+[[defaults.forces]]
+model = "central_gravity"
+
+[[defaults.forces]]
+model = "zonal_j2"
+
+[[defaults.forces]]
+model = "sun_gravity"
+
+[[defaults.forces]]
+model = "solar_radiation"
+
+[cases.full]
+output = { step_s = 60.0, itrf = true, elements = true, accelerations = true, stm = true, record_events = ["ascending_node", "descending_node", "periapsis", "apoapsis", "penumbra", "umbra"] }
+fitting = { element_sets = ["keplerian", "broadcast", "mean"], window_hours = 1.0, spacing_hours = 0.5, max_windows = 3 }
+
+[cases.short]
+output = { step_s = 600.0 }
+fitting = { element_sets = ["keplerian"], window_hours = 5.0 }
+
+[[sweeps]]
+name = "cr"
+base = "short"
+grid."spacecraft.cr" = { first = 1.0, last = 1.0, step = 0.1 }
+
+[cases.low]
+initial_state.eccentricity = 0.1
+initial_state.mean_anomaly_deg = 180.0
+"""
+
+
+def _doc_names(text: str) -> set[str]:
+    """Identifiers inside the code spans and fenced blocks of a Markdown page."""
+    import re
+
+    spans: list[str] = []
+    for k, part in enumerate(text.split("```")):
+        spans.extend([part] if k % 2 else re.findall(r"`([^`\n]+)`", part))
+    return {w for sp in spans for w in re.findall(r"[A-Za-z_][A-Za-z0-9_]*", sp)}
+
+
+def _file_names(path: Path) -> tuple[dict[str, str], set[str]]:
+    """Every group / dataset / attribute name, fitted-value name, event kind and status
+    found in a study file (name -> where first seen), and the acceleration model names."""
+    names: dict[str, str] = {}
+    models: set[str] = set()
+
+    def text(v) -> str:
+        return v.decode() if isinstance(v, bytes) else str(v)
+
+    with h5py.File(path, "r") as f:
+        for a in f.attrs:
+            names.setdefault(a, "/ attribute")
+        for key in f:
+            names.setdefault(key, "/")
+        for case, g in f["cases"].items():
+            names.setdefault(text(g.attrs["status"]), f"{case} status value")
+            for a in g.attrs:
+                names.setdefault(a, f"{case} attribute")
+
+            def visit(rel: str, obj, case=case) -> None:
+                parts = rel.split("/")
+                if parts[0] == "acceleration" and len(parts) == 2:  # <model_name>
+                    models.add(parts[1])
+                    parts = parts[:1]
+                for p in parts:
+                    names.setdefault(p, f"{case}/{rel}")
+                for a in obj.attrs:
+                    names.setdefault(a, f"{case}/{rel} attribute")
+
+            g.visititems(visit)
+            if "events" in g:
+                for kind in g["events/kind"][()]:
+                    names.setdefault(text(kind), f"{case}/events/kind value")
+            for fit, fg in (g["fits"].items() if "fits" in g else ()):
+                for n in fg["element_names"][()]:
+                    names.setdefault(text(n), f"{case}/fits/{fit}/element_names value")
+    return names, models
+
+
+def test_schema_page_names_every_item_of_a_real_run(tmp_path):
+    from forcemodels.registry import known_names
+    from propagator.study.hdf5_store import StudyStore
+
+    study = parse_study(tomllib.loads(SCHEMA_STUDY))
+    out = tmp_path / "schema.h5"
+    report = run_study(study, output=out, workers=1, progress=False)
+    assert sorted(report.complete) == ["cr-00", "full", "short"] and list(report.failed) == ["low"]
+    with StudyStore(out) as store:  # an interrupted case as the runner leaves it (its 2nd segment)
+        from propagator.study.runner import execute_case
+
+        calls = []
+        execute_case(study.case("short"), store, segment_s=3600.0,
+                     stop_requested=lambda: calls.append(1) or len(calls) > 1)
+    with h5py.File(out, "r") as f:  # the file really holds every kind of item
+        g = f["cases/full"]
+        for item in ("state_itrf", "elements_osculating", "stm", "acceleration/solar_radiation", "events/kind",
+                     "fits/keplerian/table/rms_3d_m", "fits/broadcast/residual_ric", "fits/mean/table/time_s",
+                     "integrator_statistics"):
+            assert item in g, item
+        assert "error" in f["cases/cr-00/fits/keplerian"].attrs and f["cases/cr-00"].attrs["sweep_name"] == "cr"
+        assert f["cases/short"].attrs["status"] == "interrupted"
+        assert "stop_min_altitude" in [k.decode() for k in f["cases/low/events/kind"][()]]
+    names, models = _file_names(out)
+    documented = _doc_names((ROOT / "docs" / "hdf5_schema.md").read_text())
+    missing = {n: where for n, where in names.items() if n not in documented}
+    assert not missing, f"not named in docs/hdf5_schema.md: {missing}"
+    assert models == {"central_gravity", "zonal_j2", "sun_gravity", "solar_radiation"}
+    assert models <= set(known_names())
 
 
 # --------------------------------------------------------------------------------------

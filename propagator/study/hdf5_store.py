@@ -12,8 +12,13 @@ Design (measured pitfalls in ``DESIGN.md``):
 * A case is appended block by block (:meth:`CaseWriter.append`), so a year-long arc at
   10 s spacing never has to be in memory whole.  The chunk cache is sized so that the
   partially filled chunk of every dataset of a case stays in memory between appends.
+* Case status (attribute ``status``): ``"running"`` while written, then ``"complete"``,
+  ``"failed"`` (:meth:`StudyStore.mark_failed`: an error) or ``"interrupted"``
+  (:meth:`StudyStore.mark_interrupted`: stopped on request, samples so far kept;
+  :func:`mark_unfinished_as_interrupted`: a writer that ended mid-case).  Only
+  ``"complete"`` counts as done (:meth:`StudyStore.completed_cases`).
 * Crash robustness: the file is flushed after a case group is created (status
-  ``"running"``), after it is finished or marked failed, and at most every
+  ``"running"``), after it is finished or marked failed or interrupted, and at most every
   ``flush_interval_s`` seconds while appending.  A process killed mid-case leaves the
   completed cases intact and the unfinished case with status ``"running"``; reopening
   the file with ``mode="a"`` and calling :meth:`StudyStore.begin_case` for that name (or
@@ -378,7 +383,8 @@ class StudyStore:
         return None if status is None else str(status)
 
     def completed_cases(self) -> set[str]:
-        """Names of the cases whose status is ``"complete"`` (read from the file)."""
+        """Names of the cases whose status is ``"complete"`` (read from the file); cases
+        ``"running"``, ``"failed"`` or ``"interrupted"`` are not complete."""
         return {n for n in self.case_names() if self.case_status(n) == STATUS_COMPLETE}
 
     # --- writing ------------------------------------------------------------------
@@ -459,6 +465,35 @@ class StudyStore:
             writer._closed = True
         self.flush()
 
+    def mark_interrupted(self, name: str, reason: str) -> None:
+        """Set a case's status to ``"interrupted"`` (stopped on request, not by an error).
+
+        ``reason`` goes to the ``error`` attribute (``traceback`` is ``""``) and
+        ``finished_utc`` is set.  The samples written so far stay readable: when the case
+        has an open writer, every time-indexed dataset is cut to the ``n_samples`` rows
+        whose append completed (an append stopped by a signal between its datasets may
+        have left a longer, partly filled one) and the events to the rows whose
+        :meth:`CaseWriter.add_events` completed; the writer is then closed.  Creates a
+        bare case group when the case never began.  Flushes the file.  An interrupted
+        case is not complete: :meth:`completed_cases` leaves it out and a rerun
+        recomputes it.
+        """
+        self._require_writable()
+        _check_case_name(name)
+        grp = self._cases().get(name)
+        if grp is None:
+            grp = self._cases().create_group(name)
+            grp.attrs["started_utc"] = _utc_now()
+            grp.attrs["software_version"] = software_version()
+            grp.attrs["n_samples"] = np.int64(0)
+        writer = self._writers.pop(name, None)
+        if writer is not None:
+            writer._truncate_to_committed()
+            writer._closed = True
+        _label_interrupted(grp, reason)
+        grp.attrs["finished_utc"] = _utc_now()
+        self.flush()
+
     def import_case_from(self, other_path: str | os.PathLike, name: str) -> None:
         """Copy the case group ``name`` from another study file (e.g. a per-worker file).
 
@@ -516,6 +551,13 @@ def _raise_system_exit(signum: int, frame: Any) -> None:
     raise SystemExit(128 + signum)
 
 
+def _label_interrupted(grp: h5py.Group, reason: str) -> None:
+    """Status ``"interrupted"`` with ``reason`` in ``error`` (no traceback)."""
+    grp.attrs["status"] = STATUS_INTERRUPTED
+    grp.attrs["error"] = str(reason)
+    grp.attrs["traceback"] = ""
+
+
 def _check_termination() -> None:
     if _termination_signal is not None:
         raise SystemExit(128 + _termination_signal)
@@ -555,6 +597,7 @@ class CaseWriter:
         self._closed = False
         self._optional: set[str] | None = None
         self._sens_names: list[str] | None = None
+        self._n_events = 0
 
     @property
     def group(self) -> h5py.Group:
@@ -688,6 +731,26 @@ class CaseWriter:
         _append_rows(ev["time_s"], t)
         _append_rows(ev["kind"], np.array(kinds, dtype=object))
         _append_rows(ev["state_gcrf"], st)
+        self._n_events += t.shape[0]
+
+    def _truncate_to_committed(self) -> None:
+        """Cut every time-indexed dataset to ``n_samples`` rows and the events to the rows
+        of completed :meth:`add_events` calls (rows of an append interrupted part-way are
+        dropped, so all series keep one length)."""
+        g = self._grp
+        g.attrs["n_samples"] = np.int64(self.n_samples)
+        for key in ("time_s", "state_gcrf", "state_itrf", "elements_osculating", "stm", "sensitivity"):
+            ds = g.get(key)
+            if isinstance(ds, h5py.Dataset) and ds.shape[0] > self.n_samples:
+                ds.resize(self.n_samples, axis=0)
+        acc = g.get("acceleration")
+        for ds in (acc.values() if isinstance(acc, h5py.Group) else ()):
+            if isinstance(ds, h5py.Dataset) and ds.shape[0] > self.n_samples:
+                ds.resize(self.n_samples, axis=0)
+        ev = g.get("events")
+        for ds in (ev.values() if isinstance(ev, h5py.Group) else ()):
+            if isinstance(ds, h5py.Dataset) and ds.shape[0] > self._n_events:
+                ds.resize(self._n_events, axis=0)
 
     def add_fit(self, fit_name: str, values: dict[str, float], residuals_ric: np.ndarray | None = None,
                 residual_times: np.ndarray | None = None, table: dict[str, np.ndarray] | None = None,
@@ -889,9 +952,8 @@ def mark_unfinished_as_interrupted(path: str | os.PathLike) -> list[str]:
             if isinstance(status, bytes):
                 status = status.decode()
             if status == STATUS_RUNNING:
-                g.attrs["status"] = STATUS_INTERRUPTED
-                g.attrs["error"] = ("the process writing this case ended before the case finished "
-                                    f"(found running at {_utc_now()})")
+                _label_interrupted(g, "the process writing this case ended before the case finished "
+                                      f"(found running at {_utc_now()})")
                 names.append(name)
         f.flush()
     return names

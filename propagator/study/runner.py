@@ -372,10 +372,9 @@ def execute_case(case: ResolvedCase, store: StudyStore, *, segment_s: float = 86
 
 
 def _mark_interrupted(store: StudyStore, name: str, why: str) -> None:
+    """``StudyStore.mark_interrupted`` (status ``interrupted``, ``why`` in ``error``), best effort."""
     try:
-        store.mark_failed(name, why)
-        store.file[f"cases/{name}"].attrs["status"] = STATUS_INTERRUPTED
-        store.flush()
+        store.mark_interrupted(name, why)
     except Exception:  # pragma: no cover - best effort while stopping
         pass
 
