@@ -547,3 +547,41 @@ def test_events_in_backward_runs_keep_their_physical_sense():
             assert e.rising and e.state[5] > 0.0
         else:
             assert not e.rising
+
+
+def test_output_and_event_buffers_grow():
+    """Runs with more steps (> 1024) and events (> 16) than the first buffers hold.
+
+    The compiled loop returns to its allocating caller to enlarge the buffers and goes
+    on from where it stopped; nothing may be lost or repeated.  Events against Kepler's
+    equation (as test_node_and_apsis_event_times), every-step states against a run with
+    those step times as an output grid (identical steps, so identical states).
+    """
+    days = 14.0
+    evs = [EventSpec("ascending_node"), EventSpec("periapsis"), EventSpec("apoapsis")]
+    st = IntegratorSettings(rtol=1e-13, atol_pos_m=1e-7, atol_vel_m_s=1e-10)
+    y0 = kepler_state(MEO, 0.0)[0]
+    steps = propagate(None, y0, ["central_gravity"], duration=days * 86400.0, settings=st,
+                      output=OutputGrid(every_step=True), events=evs)
+    assert steps.status == 0
+    n = steps.stats["accepted_steps"]
+    assert n > 1024 and steps.times.size == n + 1
+    assert np.all(np.diff(steps.times) > 0) and steps.times[-1] == days * 86400.0
+    period = 2 * np.pi * np.sqrt(MEO[0] ** 3 / GM_EARTH)
+    t_max = days * 86400.0
+    node_ref = _node_times(MEO, t_max)
+    ref = {"ascending_node": node_ref[node_ref < t_max],
+           "periapsis": mean_anomaly_time(MEO, 0.0) + period * np.arange(int(t_max / period) + 2),
+           "apoapsis": mean_anomaly_time(MEO, np.pi) + period * np.arange(int(t_max / period) + 2)}
+    assert len(steps.events) > 16
+    for name, r in ref.items():
+        got = np.array([e.t_s for e in steps.events if e.name == name])
+        np.testing.assert_allclose(got, r[r < t_max], rtol=0, atol=1e-6)
+    grid = propagate(None, y0, ["central_gravity"], duration=days * 86400.0, settings=st,
+                     output=OutputGrid(times_s=steps.times), events=evs)
+    # grid times = step ends: no extra dense-output stages (events use the same ones)
+    assert grid.stats["accepted_steps"] == n
+    assert grid.stats["evaluations"] == steps.stats["evaluations"]
+    np.testing.assert_array_equal(grid.times, steps.times)
+    np.testing.assert_array_equal(grid.states, steps.states)
+    assert [(e.t_s, e.name) for e in grid.events] == [(e.t_s, e.name) for e in steps.events]

@@ -65,6 +65,7 @@ def _hot_options():
 
 
 _HOT = _hot_options()
+_HOT_INLINE = dict(_HOT, inline="always")
 
 # ---- status codes -----------------------------------------------------------------------
 STATUS_OK = 0
@@ -144,12 +145,22 @@ N_STAT = 7
 _EPS = 2.220446049250313e-16
 
 
-@njit(**_HOT)
+@njit(**_HOT_INLINE)
 def rhs(t, y, dy, forces, ns, acc, dadr, dadv, dadp):
-    """dy/dt for y = [r, v, Phi, S]: [v, a, A Phi, A S + (0; da/dp)] (SI units)."""
+    """dy/dt for y = [r, v, Phi, S]: [v, a, A Phi, A S + (0; da/dp)] (SI units).
+
+    The body of ``accel_total`` (env_fill, then every model's acceleration) is written
+    out here and inlined into the callers, so a point-mass evaluation is not two nested
+    calls passing the 12-array ``forces`` tuple by value.
+    """
     r = y[0:3]
     v = y[3:6]
-    accel_total(t, r, v, forces, acc)
+    env_fill(t, forces)
+    acc[0] = 0.0
+    acc[1] = 0.0
+    acc[2] = 0.0
+    for m in range(forces[0].shape[0]):
+        model_accel(m, t, r, v, forces, acc)
     dy[0] = y[3]
     dy[1] = y[4]
     dy[2] = y[5]
@@ -157,28 +168,36 @@ def rhs(t, y, dy, forces, ns, acc, dadr, dadv, dadp):
     dy[4] = acc[1]
     dy[5] = acc[2]
     if y.shape[0] > 6:
-        partials_total(t, r, v, forces, dadr, dadv, dadp)
-        # Phi block: rows 0-2 are d r / d y0, rows 3-5 d v / d y0
-        for j in range(6):
-            for i in range(3):
-                dy[6 + i * 6 + j] = y[6 + (i + 3) * 6 + j]
-            for i in range(3):
-                s = 0.0
-                for k in range(3):
-                    s += dadr[i, k] * y[6 + k * 6 + j] + dadv[i, k] * y[6 + (k + 3) * 6 + j]
-                dy[6 + (i + 3) * 6 + j] = s
-        base = 42
-        for j in range(ns):
-            for i in range(3):
-                dy[base + i * ns + j] = y[base + (i + 3) * ns + j]
-            for i in range(3):
-                s = dadp[i, j]
-                for k in range(3):
-                    s += dadr[i, k] * y[base + k * ns + j] + dadv[i, k] * y[base + (k + 3) * ns + j]
-                dy[base + (i + 3) * ns + j] = s
+        _rhs_variational(t, y, dy, forces, ns, dadr, dadv, dadp)
 
 
 @njit(**_HOT)
+def _rhs_variational(t, y, dy, forces, ns, dadr, dadv, dadp):
+    """Phi' = A Phi, S' = A S + (0; da/dp) part of ``rhs`` (Montenbruck & Gill 2000, Sec. 7.2)."""
+    r = y[0:3]
+    v = y[3:6]
+    partials_total(t, r, v, forces, dadr, dadv, dadp)
+    # Phi block: rows 0-2 are d r / d y0, rows 3-5 d v / d y0
+    for j in range(6):
+        for i in range(3):
+            dy[6 + i * 6 + j] = y[6 + (i + 3) * 6 + j]
+        for i in range(3):
+            s = 0.0
+            for k in range(3):
+                s += dadr[i, k] * y[6 + k * 6 + j] + dadv[i, k] * y[6 + (k + 3) * 6 + j]
+            dy[6 + (i + 3) * 6 + j] = s
+    base = 42
+    for j in range(ns):
+        for i in range(3):
+            dy[base + i * ns + j] = y[base + (i + 3) * ns + j]
+        for i in range(3):
+            s = dadp[i, j]
+            for k in range(3):
+                s += dadr[i, k] * y[base + k * ns + j] + dadv[i, k] * y[base + (k + 3) * ns + j]
+            dy[base + (i + 3) * ns + j] = s
+
+
+@njit(**_HOT_INLINE)
 def _all_finite(x):
     for i in range(x.shape[0]):
         if not math.isfinite(x[i]):
@@ -220,26 +239,63 @@ def _initial_step(t0, y0, f0, direction, span, h_max, err_order, atol, rtol, n_e
     return min(100.0 * h0, h1, h_max, span), 1
 
 
+@njit(**_HOT_INLINE)
+def _combine(w, K, coef, nk, n):
+    """w[i] = sum_j coef[j] K[j, i], j = 0 .. nk-1 summed in this order, i < n.
+
+    The loop over i is innermost (vectorisable, independent sums); a separate branch for
+    the 6-component state lets the compiler unroll it.
+    """
+    if n == 6:
+        w0 = 0.0
+        w1 = 0.0
+        w2 = 0.0
+        w3 = 0.0
+        w4 = 0.0
+        w5 = 0.0
+        for j in range(nk):
+            cj = coef[j]
+            w0 += cj * K[j, 0]
+            w1 += cj * K[j, 1]
+            w2 += cj * K[j, 2]
+            w3 += cj * K[j, 3]
+            w4 += cj * K[j, 4]
+            w5 += cj * K[j, 5]
+        w[0] = w0
+        w[1] = w1
+        w[2] = w2
+        w[3] = w3
+        w[4] = w4
+        w[5] = w5
+    else:
+        for i in range(n):
+            w[i] = 0.0
+        for j in range(nk):
+            cj = coef[j]
+            for i in range(n):
+                w[i] += cj * K[j, i]
+
+
 @njit(**_HOT)
-def _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, ns1, norm_kind):
-    """Scaled local error estimate (<= 1 accepts); HNW I eq. II.4.10/11 and Sec. II.10."""
+def _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, ns1, norm_kind, w5, w3):
+    """Scaled local error estimate (<= 1 accepts); HNW I eq. II.4.10/11 and Sec. II.10.
+
+    w5, w3: work arrays (>= n_err).
+    """
     s5 = 0.0
     s3 = 0.0
     m5 = 0.0
     m3 = 0.0
+    _combine(w5, K, e, ns1, n_err)
+    if err_kind == 1:
+        _combine(w3, K, e_aux, ns1, n_err)
     for i in range(n_err):
         sc = atol[i] + rtol * max(abs(y[i]), abs(ynew[i]))
-        v5 = 0.0
-        for j in range(ns1):
-            v5 += e[j] * K[j, i]
-        v5 /= sc
+        v5 = w5[i] / sc
         s5 += v5 * v5
         m5 = max(m5, abs(v5))
         if err_kind == 1:
-            v3 = 0.0
-            for j in range(ns1):
-                v3 += e_aux[j] * K[j, i]
-            v3 /= sc
+            v3 = w3[i] / sc
             s3 += v3 * v3
             m3 = max(m3, abs(v3))
     ah = abs(h)
@@ -254,6 +310,41 @@ def _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, ns1, norm_
     return ah * math.sqrt(s5 / n_err)
 
 
+@njit(**_HOT_INLINE)
+def _stage_state(j, h, y, K, A, ytmp, ny):
+    """ytmp = y + h sum_{m<j} A[j, m] K[m] (the sum in the order m = 0, 1, ...)."""
+    if ny == 6:
+        s0 = 0.0
+        s1 = 0.0
+        s2 = 0.0
+        s3 = 0.0
+        s4 = 0.0
+        s5 = 0.0
+        for m in range(j):
+            a = A[j, m]
+            s0 += a * K[m, 0]
+            s1 += a * K[m, 1]
+            s2 += a * K[m, 2]
+            s3 += a * K[m, 3]
+            s4 += a * K[m, 4]
+            s5 += a * K[m, 5]
+        ytmp[0] = y[0] + h * s0
+        ytmp[1] = y[1] + h * s1
+        ytmp[2] = y[2] + h * s2
+        ytmp[3] = y[3] + h * s3
+        ytmp[4] = y[4] + h * s4
+        ytmp[5] = y[5] + h * s5
+    else:
+        for i in range(ny):
+            ytmp[i] = 0.0
+        for m in range(j):
+            a = A[j, m]
+            for i in range(ny):
+                ytmp[i] += a * K[m, i]
+        for i in range(ny):
+            ytmp[i] = y[i] + h * ytmp[i]
+
+
 @njit(**_HOT)
 def _dense_prepare(t, h, y, K, A, c, P, s, nt, deg, forces, ns, ytmp, Q, acc, dadr, dadv, dadp):
     """Evaluate the dense-output stages s+1.. and the coefficients Q (deg x ny).
@@ -262,11 +353,7 @@ def _dense_prepare(t, h, y, K, A, c, P, s, nt, deg, forces, ns, ytmp, Q, acc, da
     """
     ny = y.shape[0]
     for j in range(s + 1, nt):
-        for i in range(ny):
-            acc_i = 0.0
-            for m in range(j):
-                acc_i += A[j, m] * K[m, i]
-            ytmp[i] = y[i] + h * acc_i
+        _stage_state(j, h, y, K, A, ytmp, ny)
         rhs(t + c[j] * h, ytmp, K[j], forces, ns, acc, dadr, dadv, dadp)
     for m in range(deg):
         for i in range(ny):
@@ -287,16 +374,23 @@ def _dense_eval(theta, h, y, Q, deg, n, out):
         out[i] = y[i] + h * theta * p
 
 
-@njit(cache=True)
+@njit(**_HOT)
 def _event_value(kind, t, y, param, forces, sh):
     """Event function g(t, y) of one event kind (see EV_* constants)."""
+    if kind >= EV_PENUMBRA:
+        env_fill(t, forces)
+    return _event_value_env(kind, y, param, forces, sh)
+
+
+@njit(**_HOT)
+def _event_value_env(kind, y, param, forces, sh):
+    """``_event_value`` with forces[8] (env) already filled at the event time."""
     if kind == EV_NODE:
         return y[2]
     if kind == EV_APSIS:
         return y[0] * y[3] + y[1] * y[4] + y[2] * y[5]
     if kind == EV_RADIUS:
         return math.sqrt(y[0] * y[0] + y[1] * y[1] + y[2] * y[2]) - param
-    env_fill(t, forces)
     env = forces[8]
     shadow_boundaries_nb(y[0:3], env[ENV_SUN:ENV_SUN + 3], sh)
     if kind == EV_PENUMBRA:
@@ -304,13 +398,13 @@ def _event_value(kind, t, y, param, forces, sh):
     return sh[1]
 
 
-@njit(cache=True)
+@njit(**_HOT)
 def _g_dense(theta, kind, param, t, h, y, Q, deg, forces, ytmp, sh):
     _dense_eval(theta, h, y, Q, deg, min(6, y.shape[0]), ytmp)
     return _event_value(kind, t + theta * h, ytmp, param, forces, sh)
 
 
-@njit(cache=True)
+@njit(**_HOT)
 def _locate(kind, param, t, h, y, Q, deg, forces, ytmp, sh, g0, g1, xtol):
     """Root theta in [0, 1] of g on the dense output, g(0)=g0, g(1)=g1 of opposite signs.
 
@@ -396,7 +490,7 @@ def _grow_f2(a, n_new):
     return out
 
 
-@njit(cache=True)
+@njit(**_HOT_INLINE)
 def _set_row(dst, row, src, n):
     for i in range(n):
         dst[row, i] = src[i]
@@ -408,17 +502,11 @@ def _rk_solution(t, h, y, comp, K, A, c, b, s, kahan, forces, ns, ytmp, ynew, co
     """Stages 1..s-1 (stage 0 = K[0] given) and y_new = y + h sum b_j k_j (Kahan-compensated)."""
     ny = y.shape[0]
     for j in range(1, s):
-        for i in range(ny):
-            a_sum = 0.0
-            for m in range(j):
-                a_sum += A[j, m] * K[m, i]
-            ytmp[i] = y[i] + h * a_sum
+        _stage_state(j, h, y, K, A, ytmp, ny)
         rhs(t + c[j] * h, ytmp, K[j], forces, ns, acc, dadr, dadv, dadp)
+    _combine(ynew, K, b, s, ny)
     for i in range(ny):
-        b_sum = 0.0
-        for j in range(s):
-            b_sum += b[j] * K[j, i]
-        incr = h * b_sum
+        incr = h * ynew[i]
         if kahan:
             yk = incr - comp[i]
             ts = y[i] + yk
@@ -429,7 +517,7 @@ def _rk_solution(t, h, y, comp, K, A, c, b, s, kahan, forces, ns, ytmp, ynew, co
             compnew[i] = 0.0
 
 
-@njit(cache=True)
+@njit(**_HOT)
 def _find_events(t, h, t_new, y, ynew, K, A, c, P, s, nt, deg, forces, ns, ytmp, Q,
                  acc, dadr, dadv, dadp, ev_int, ev_par, g_old, g_new, skip_k, sh,
                  f_t, f_k, f_d, f_th, stats):
@@ -437,12 +525,14 @@ def _find_events(t, h, t_new, y, ynew, K, A, c, P, s, nt, deg, forces, ns, ytmp,
 
     The crossing sense (f_d = +1 rising, -1 falling) refers to physical time, so an
     ascending node is ascending in backward runs too.  Returns (number found, dense
-    output prepared).
+    output prepared).  Call right after the evaluation of f(t_new, ynew): the event
+    functions at t_new reuse the environment (forces[8]) it filled.
     """
     dense_ready = False
     n_found = 0
     for k in range(ev_int.shape[0]):
-        g_new[k] = _event_value(ev_int[k, EVI_KIND], t_new, ynew, ev_par[k], forces, sh)
+        g_new[k] = _event_value_env(ev_int[k, EVI_KIND], ynew, ev_par[k], forces, sh)
+    for k in range(ev_int.shape[0]):
         if k == skip_k:
             continue
         up = g_old[k] < 0.0 and g_new[k] >= 0.0
@@ -474,6 +564,31 @@ def _find_events(t, h, t_new, y, ynew, K, A, c, P, s, nt, deg, forces, ns, ytmp,
     return n_found, dense_ready
 
 
+# ---- loop state kept between re-entries of _steps (lsf: float64, lsi: int64) ------------
+LSF_T = 0             # current time [s]
+LSF_TC = 1            # Kahan compensation of t
+LSF_H_ABS = 2         # proposed |h| [s]
+LSF_ERR_PREV = 3      # previous accepted error (PI controller)
+LSF_T_STOP = 4        # time of the pending restart event
+LSF_STOP_G = 5        # its event function beyond the crossing
+LSF_DIR = 6           # +1 forward, -1 backward
+N_LSF = 7
+LSI_STATUS = 0
+LSI_STEPS = 1         # steps attempted
+LSI_NONFINITE = 2     # consecutive non-finite attempts
+LSI_REJECTED = 3      # 1: last attempt rejected
+LSI_STOP_K = 4        # pending restart event index, -1 none
+LSI_STOP_D = 5        # its crossing sense
+LSI_IO = 6            # next output time index (OUT_GRID)
+LSI_NOUT = 7          # outputs written
+LSI_NEVT = 8          # events recorded
+N_LSI = 9
+
+RUN_DONE = 0          # _steps finished (end time, terminal event or failure)
+RUN_GROW_OUT = 1      # _steps needs a larger output buffer
+RUN_GROW_EV = 2       # _steps needs a larger event buffer
+
+
 @njit(cache=True)
 def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par):
     """Integrate y' = rhs(t, y) from t0 to t_end (either direction).
@@ -488,32 +603,25 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
 
     Returns (status, t_final, y_final, out_t, out_y, n_out, ev_t, ev_index, ev_dir, ev_y,
     n_events, stats).
+
+    This function allocates the work and output arrays, makes the first evaluation and
+    the starting step; the steps themselves run in :func:`_steps`, compiled without
+    reference counting (module docstring of ``forcemodels.compose``, "Speed"), which
+    returns here only when an output or event buffer must grow.
     """
     s = tab[TAB_STAGES]
     nt = tab[TAB_TOTAL]
     err_order = tab[TAB_ERR_ORDER]
-    err_kind = tab[TAB_ERR_KIND]
     deg = tab[TAB_DENSE_DEG]
     ny = y0.shape[0]
     ns = opt[OPT_NSENS]
     rtol = ctl[CTL_RTOL]
-    safety = ctl[CTL_SAFETY]
-    fac_min = ctl[CTL_FAC_MIN]
-    fac_max = ctl[CTL_FAC_MAX]
-    beta = ctl[CTL_BETA]
     h_max = ctl[CTL_H_MAX]
-    h_min = ctl[CTL_H_MIN]
-    fixed = opt[OPT_FIXED] != 0
-    kahan = opt[OPT_KAHAN] != 0
-    norm_kind = opt[OPT_NORM]
     out_mode = opt[OPT_OUT_MODE]
-    max_steps = opt[OPT_MAX_STEPS]
     n_err = ny if opt[OPT_ERR_VAR] != 0 else 6
-    alpha = 1.0 / (err_order + 1.0) - 0.75 * beta
     direction = 1.0 if t_end >= t0 else -1.0
     n_ev = ev_int.shape[0]
     n_grid = out_times.shape[0]
-    n6 = min(ny, 6)         # position + velocity (not a literal: one compiled version of callees)
 
     atol = np.empty(ny)
     for i in range(ny):
@@ -529,6 +637,8 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
     compnew = np.zeros(ny)
     ytmp = np.empty(ny)
     ydense = np.empty(ny)
+    w5 = np.empty(ny)
+    w3 = np.empty(ny)
     Q = np.zeros((deg, ny))
     acc = np.zeros(3)
     dadr = np.zeros((3, 3))
@@ -548,7 +658,6 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
     ev_k = np.empty(ev_cap, dtype=np.int64)
     ev_d = np.empty(ev_cap, dtype=np.int64)
     ev_y = np.empty((ev_cap, 6))
-    n_evt = 0
     g_old = np.zeros(n_ev)
     g_new = np.zeros(n_ev)
     f_t = np.empty(max(n_ev, 1))
@@ -557,9 +666,8 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
     f_th = np.empty(max(n_ev, 1))
 
     t = t0
-    tc = 0.0
     status = STATUS_OK
-    rhs(t, y, K[0], forces, ns, acc, dadr, dadv, dadp)
+    _rhs_call(t, y, K[0], forces, ns, acc, dadr, dadv, dadp)
     stats[STAT_NFEV] += 1
     for k in range(n_ev):
         g_old[k] = _event_value(ev_int[k, EVI_KIND], t, y, ev_par[k], forces, sh)
@@ -589,25 +697,114 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
             h_abs, nf = _initial_step(t0, y, K[0], direction, span, h_max, err_order, atol, rtol, n_err,
                                       forces, ns, ytmp, ydense, acc, dadr, dadv, dadp)
             stats[STAT_NFEV] += nf
-    err_prev = 1.0
-    rejected_last = False
-    n_steps = 0
-    nonfinite_streak = 0
-    # pending restart event (index held in an array so that numba never types it as a
-    # literal, which would compile _find_events twice): land exactly on t_stop first
-    pending = np.full(1, -1, dtype=np.int64)
-    t_stop = 0.0
-    stop_g = 0.0
-    stop_d = 0
 
-    while span > 0.0:
+    lsf = np.zeros(N_LSF)
+    lsi = np.zeros(N_LSI, dtype=np.int64)
+    lsf[LSF_T] = t
+    lsf[LSF_H_ABS] = h_abs
+    lsf[LSF_ERR_PREV] = 1.0
+    lsf[LSF_DIR] = direction
+    lsi[LSI_STATUS] = status
+    lsi[LSI_STOP_K] = -1
+    lsi[LSI_IO] = io
+    lsi[LSI_NOUT] = n_out
+    if span > 0.0:
+        while True:
+            code = _steps(t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par,
+                          atol, K, y, ynew, comp, compnew, ytmp, ydense, w5, w3, Q, acc, dadr, dadv, dadp,
+                          sh, stats, out_t, out_y, ev_t, ev_k, ev_d, ev_y, g_old, g_new, f_t, f_k, f_d,
+                          f_th, lsf, lsi)
+            if code == RUN_GROW_OUT:
+                cap = 2 * out_t.shape[0]
+                out_t = _grow_f1(out_t, cap)
+                out_y = _grow_f2(out_y, cap)
+            elif code == RUN_GROW_EV:
+                ev_cap = 2 * (lsi[LSI_NEVT] + n_ev + 1)
+                ev_t = _grow_f1(ev_t, ev_cap)
+                ev_k = _grow_i1(ev_k, ev_cap)
+                ev_d = _grow_i1(ev_d, ev_cap)
+                ev_y = _grow_f2(ev_y, ev_cap)
+            else:
+                break
+    return (lsi[LSI_STATUS], lsf[LSF_T], y, out_t, out_y, lsi[LSI_NOUT], ev_t, ev_k, ev_d, ev_y,
+            lsi[LSI_NEVT], stats)
+
+
+@njit(**_HOT)
+def _rhs_call(t, y, dy, forces, ns, acc, dadr, dadv, dadp):
+    """``rhs`` as a real call (for the reference-counted ``integrate``)."""
+    rhs(t, y, dy, forces, ns, acc, dadr, dadv, dadp)
+
+
+@njit(**_HOT)
+def _steps(t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par,
+           atol, K, y, ynew, comp, compnew, ytmp, ydense, w5, w3, Q, acc, dadr, dadv, dadp,
+           sh, stats, out_t, out_y, ev_t, ev_k, ev_d, ev_y, g_old, g_new, f_t, f_k, f_d,
+           f_th, lsf, lsi):
+    """The stepping loop of :func:`integrate` (allocation-free, no reference counting).
+
+    Runs from the state in (lsf, lsi, y, K[0], comp, g_old) until the end time, a
+    terminal event or a failure (returns RUN_DONE), or until the output (RUN_GROW_OUT) or
+    event buffer (RUN_GROW_EV) might overflow in the next step; the loop state is saved
+    in (lsf, lsi) so that the caller can grow the buffer and call again.
+    """
+    s = tab[TAB_STAGES]
+    nt = tab[TAB_TOTAL]
+    err_order = tab[TAB_ERR_ORDER]
+    err_kind = tab[TAB_ERR_KIND]
+    deg = tab[TAB_DENSE_DEG]
+    ny = y.shape[0]
+    ns = opt[OPT_NSENS]
+    rtol = ctl[CTL_RTOL]
+    safety = ctl[CTL_SAFETY]
+    fac_min = ctl[CTL_FAC_MIN]
+    fac_max = ctl[CTL_FAC_MAX]
+    beta = ctl[CTL_BETA]
+    h_max = ctl[CTL_H_MAX]
+    h_min = ctl[CTL_H_MIN]
+    fixed = opt[OPT_FIXED] != 0
+    kahan = opt[OPT_KAHAN] != 0
+    norm_kind = opt[OPT_NORM]
+    out_mode = opt[OPT_OUT_MODE]
+    max_steps = opt[OPT_MAX_STEPS]
+    n_err = ny if opt[OPT_ERR_VAR] != 0 else 6
+    alpha = 1.0 / (err_order + 1.0) - 0.75 * beta
+    n_ev = ev_int.shape[0]
+    n_grid = out_times.shape[0]
+    n6 = min(ny, 6)         # position + velocity (not a literal: one compiled version of callees)
+
+    t = lsf[LSF_T]
+    tc = lsf[LSF_TC]
+    h_abs = lsf[LSF_H_ABS]
+    err_prev = lsf[LSF_ERR_PREV]
+    t_stop = lsf[LSF_T_STOP]
+    stop_g = lsf[LSF_STOP_G]
+    direction = lsf[LSF_DIR]
+    status = lsi[LSI_STATUS]
+    n_steps = lsi[LSI_STEPS]
+    nonfinite_streak = lsi[LSI_NONFINITE]
+    rejected_last = lsi[LSI_REJECTED] != 0
+    stop_k = lsi[LSI_STOP_K]
+    stop_d = lsi[LSI_STOP_D]
+    io = lsi[LSI_IO]
+    n_out = lsi[LSI_NOUT]
+    n_evt = lsi[LSI_NEVT]
+    code = RUN_DONE
+
+    while True:
+        if out_mode == OUT_STEPS and n_out >= out_t.shape[0]:
+            code = RUN_GROW_OUT
+            break
+        if n_ev > 0 and n_evt + n_ev + 1 > ev_t.shape[0]:
+            code = RUN_GROW_EV
+            break
         if n_steps >= max_steps:
             status = STATUS_MAX_STEPS
             break
         if h_abs < max(h_min, 10.0 * _EPS * abs(t)):
             status = STATUS_NONFINITE if nonfinite_streak > 0 else STATUS_STEP_TOO_SMALL
             break
-        stop_k = pending[0]
+        # a pending restart event: land exactly on t_stop first
         target = t_stop if stop_k >= 0 else t_end
         h = direction * h_abs
         clamped = direction * (t + 1.01 * h - target) >= 0.0
@@ -632,7 +829,7 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
 
         err = 0.0
         if not fixed:
-            err = _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, s + 1, norm_kind)
+            err = _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, s + 1, norm_kind, w5, w3)
         if not (_all_finite(ynew) and _all_finite(K[s]) and math.isfinite(err)):
             nonfinite_streak += 1
             stats[STAT_REJECTED] += 1
@@ -668,7 +865,6 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
         if cut >= 0 and not terminal and f_th[cut] < 1.0:
             # restart event inside the step: discard it, land on the event, then fresh stages
             stop_k = f_k[cut]
-            pending[0] = stop_k
             t_stop = f_t[cut]
             stop_g = g_new[stop_k]
             stop_d = f_d[cut]
@@ -685,13 +881,7 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
             stats[STAT_H_MIN] = min(stats[STAT_H_MIN], abs(h))
         stats[STAT_H_MAX] = max(stats[STAT_H_MAX], abs(h))
         n_add = n_rec + (1 if landing and not terminal else 0)
-        if n_evt + n_add > ev_cap:
-            ev_cap = 2 * (n_evt + n_add)
-            ev_t = _grow_f1(ev_t, ev_cap)
-            ev_k = _grow_i1(ev_k, ev_cap)
-            ev_d = _grow_i1(ev_d, ev_cap)
-            ev_y = _grow_f2(ev_y, ev_cap)
-        for p in range(n_add):
+        for p in range(n_add):          # capacity checked at the top of the loop
             if p < n_rec:
                 ev_t[n_evt] = f_t[p]
                 ev_k[n_evt] = f_k[p]
@@ -726,11 +916,7 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
                 io += 1
         if th_last < 1.0:
             _dense_eval(th_last, h, y, Q, deg, ny, ynew)     # terminal event inside the step
-        if out_mode == OUT_STEPS:
-            if n_out >= cap:
-                cap *= 2
-                out_t = _grow_f1(out_t, cap)
-                out_y = _grow_f2(out_y, cap)
+        if out_mode == OUT_STEPS:                             # capacity checked at the top
             out_t[n_out] = t_last
             _set_row(out_y, n_out, ynew, ny)
             n_out += 1
@@ -749,7 +935,7 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
             g_old[k] = g_new[k]
         if landing:
             g_old[stop_k] = stop_g          # the sign beyond the crossing
-            pending[0] = -1
+            stop_k = -1
             err_prev = 1.0
             rejected_last = False
             continue                        # keep the step size proposed before landing
@@ -767,7 +953,22 @@ def integrate(t0, y0, t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_ti
             err_prev = max(err, 1e-4)
         rejected_last = False
 
-    return (status, t, y, out_t, out_y, n_out, ev_t, ev_k, ev_d, ev_y, n_evt, stats)
+    lsf[LSF_T] = t
+    lsf[LSF_TC] = tc
+    lsf[LSF_H_ABS] = h_abs
+    lsf[LSF_ERR_PREV] = err_prev
+    lsf[LSF_T_STOP] = t_stop
+    lsf[LSF_STOP_G] = stop_g
+    lsi[LSI_STATUS] = status
+    lsi[LSI_STEPS] = n_steps
+    lsi[LSI_NONFINITE] = nonfinite_streak
+    lsi[LSI_REJECTED] = 1 if rejected_last else 0
+    lsi[LSI_STOP_K] = stop_k
+    lsi[LSI_STOP_D] = stop_d
+    lsi[LSI_IO] = io
+    lsi[LSI_NOUT] = n_out
+    lsi[LSI_NEVT] = n_evt
+    return code
 
 
 @njit(cache=True)
