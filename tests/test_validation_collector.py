@@ -87,3 +87,24 @@ def test_script_with_no_checks_counts_as_failure():
 @pytest.mark.parametrize("name", list(run_all.SCRIPTS))
 def test_every_listed_area_is_known(name):
     assert run_all.SCRIPTS[name] in run_all.AREAS
+
+
+def test_failed_checks_exit_is_not_counted_twice_but_a_crash_after_json_is(tmp_path):
+    """exit 1 with a failing check: one FAIL row; exit 1 with all checks passing: the script fails."""
+    body = ("import sys\n"
+            f"sys.path.insert(0, {str(ROOT / 'validation')!r})\n"
+            "from _common import start\n"
+            "rep = start(__file__, 'x')\n"
+            "rep.check('elements', 'c', 'common practice', 2.0, tolerance='< 1', passed=PASSED)\n"
+            "code = rep.finish()\n"
+            "sys.exit(EXIT)\n")
+    (tmp_path / "fails.py").write_text(body.replace("PASSED", "False").replace("EXIT", "code"))
+    (tmp_path / "crash.py").write_text(body.replace("PASSED", "True").replace("EXIT", "1"))
+    out = tmp_path / "out"
+    o1 = run_all.run_script("fails", "elements", quick=True, timeout_s=60, script_dir=tmp_path, out_dir=out)
+    o2 = run_all.run_script("crash", "elements", quick=True, timeout_s=60, script_dir=tmp_path, out_dir=out)
+    assert o1.status == "ok" and o2.status == "failed"
+    text = run_all.build_report([o1, o2], quick=True, machine=MACHINE)
+    assert "1 checks passed, 2 failed" in text
+    assert "`fails.py`: script exited non-zero" not in text
+    assert "`crash.py`: script exited non-zero" in text
