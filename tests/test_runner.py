@@ -561,3 +561,114 @@ def test_sigkill_mid_study_then_resume(tmp_path):
     done = [n for n, v in st.items() if v == "complete"]
     assert 2 <= len(done) < 6
     _check_resumed(study_path, out, {n: read_case(out, n) for n in done})
+
+
+# --------------------------------------------------------------------------------------
+# throughput machinery: same file, same numbers
+# --------------------------------------------------------------------------------------
+def test_fast_attribute_writes_store_what_h5py_stores(tmp_path):
+    """hdf5_store._set_attrs (low-level h5a calls) against h5py's attrs[key] = value:
+    same HDF5 type, shape and value for every kind of value the store writes."""
+    from propagator.study.hdf5_store import _attr_value, _set_attrs
+
+    values = {"s": "text é", "empty": "", "none": None, "f": 1.5, "nf": np.float64(-2.25), "i": 7,
+              "ni": np.int64(-3), "b": True, "nb": np.bool_(False), "strs": ["a", "b"],
+              "nums": [1, 2.5], "arr": np.arange(3.0), "json": {"k": [1, 2]}}
+    with h5py.File(tmp_path / "a.h5", "w") as f:
+        ref, fast = f.create_group("ref"), f.create_group("fast")
+        for k, v in values.items():
+            ref.attrs[k] = _attr_value(v)
+        _set_attrs(fast, values, new=True)
+        _set_attrs(fast, {"f": 3.0, "s": "again"})  # overwriting deletes first, as h5py does
+        ref.attrs["f"], ref.attrs["s"] = _attr_value(3.0), "again"
+    with h5py.File(tmp_path / "a.h5", "r") as f:
+        ref, fast = f["ref"], f["fast"]
+        assert sorted(ref.attrs) == sorted(fast.attrs)
+        for k in ref.attrs:
+            a, b = ref.attrs.get_id(k), fast.attrs.get_id(k)
+            assert a.get_type().equal(b.get_type()) and a.shape == b.shape, k
+            va, vb = ref.attrs[k], fast.attrs[k]
+            assert type(va) is type(vb) and np.array_equal(np.asarray(va), np.asarray(vb)), k
+
+
+def test_fast_dataset_creation_matches_h5py(tmp_path):
+    """The store's second series of a kind reuses the creation property list and type
+    of the first (made by h5py): identical chunks, filters, fill value, extent, bytes."""
+    from propagator.study.hdf5_store import StudyStore, _append_rows
+
+    rows = np.arange(60.0).reshape(10, 6)
+    with StudyStore(tmp_path / "s.h5", study_name="x") as store:
+        g = store.file.create_group("t")
+        first = store._create_series(g, "first", (6,))
+        second = store._create_series(g, "second", (6,))
+        for ds in (first, second):
+            _append_rows(ds, rows)
+            _append_rows(ds, rows[:3] + 100.0)
+        assert first.id.get_create_plist().equal(second.id.get_create_plist())
+        assert first.id.get_type().equal(second.id.get_type())
+        for attr in ("chunks", "compression", "shuffle", "maxshape", "fillvalue", "shape", "dtype"):
+            assert getattr(first, attr) == getattr(second, attr), attr
+        assert second.chunks == (4096, 6) and second.compression == "lzf" and second.shuffle
+        assert np.array_equal(second[()], np.vstack([rows, rows[:3] + 100.0]))
+
+
+def test_environment_tables_are_cached_per_epoch_and_span():
+    from forcemodels.ephemeris import build_sun_moon_table
+    from propagator.rotation_table import build_rotation_table
+    from propagator.study import runner
+    from propagator.timescales import Epoch
+
+    e1 = Epoch.from_iso("2024-03-20T12:00:00 TT")
+    e2 = Epoch.from_iso("2024-03-21T12:00:00 TT")
+    a = runner._env_table("rotation", e1, 0.0, 3600.0)
+    assert runner._env_table("rotation", e1, 0.0, 3600.0) is a  # cached
+    assert np.array_equal(a, build_rotation_table(e1, 0.0, 3600.0))  # the table propagate builds
+    b = runner._env_table("rotation", e2, 0.0, 3600.0)
+    assert not np.array_equal(a, b)  # another epoch is another table
+    assert not np.array_equal(a, runner._env_table("rotation", e1, 0.0, 7200.0))
+    s = runner._env_table("sun_moon", e1, -3600.0, 0.0)
+    assert np.array_equal(s, build_sun_moon_table(e1, -3600.0, 0.0))
+    for _ in range(runner._ENV_CACHE_SIZE + 2):  # bounded
+        e1 = e1 + 60.0
+        runner._env_table("sun_moon", e1, 0.0, 60.0)
+    assert len(runner._ENV_CACHE) <= runner._ENV_CACHE_SIZE
+
+
+def test_in_memory_image_and_part_file_give_the_same_case(inline_run, tmp_path):
+    """A worker's case travels as an in-memory HDF5 image (short arcs) or a part file
+    (long arcs); both import to the same numbers and attributes."""
+    from propagator.study import runner
+    from propagator.study.hdf5_store import StudyStore
+
+    study, _, path = inline_run
+    case = study.case("leo-b")
+    text = case.to_toml()
+    mem = runner.run_case(text, case.name, None, "tiny", 86400.0)
+    disk = runner.run_case(text, case.name, str(tmp_path / "part.h5"), "tiny", 86400.0)
+    assert mem.data is not None and disk.data is None and mem.status == disk.status == "complete"
+    with StudyStore(tmp_path / "a.h5", study_name="tiny") as st:
+        st.import_case_from(mem.data, case.name)
+    with StudyStore(tmp_path / "b.h5", study_name="tiny") as st:
+        st.import_case_from(tmp_path / "part.h5", case.name)
+    a, b = read_case(tmp_path / "a.h5", case.name), read_case(tmp_path / "b.h5", case.name)
+    assert same_case(a, b) and same_case(a, read_case(path, case.name))
+    volatile = {"started_utc", "finished_utc"}
+    assert {k: v for k, v in a["attrs"].items() if k not in volatile} == \
+        {k: v for k, v in b["attrs"].items() if k not in volatile}
+    # the size estimate sends long arcs through part files (1 year at 10 s: 3.2e6 samples)
+    year = case_from_toml("y", text.replace("duration_s = 7200.0", "duration_s = 31557600.0")
+                          .replace("step_s = 120.0", "step_s = 10.0"))
+    assert runner.output_bytes_estimate(case) < runner.IN_MEMORY_MAX_BYTES < runner.output_bytes_estimate(year)
+
+
+def test_process_pool_through_part_files_gives_identical_numbers(inline_run, tmp_path, monkeypatch):
+    from propagator.study import runner
+
+    study, _, path = inline_run
+    monkeypatch.setattr(runner, "IN_MEMORY_MAX_BYTES", 0.0)  # decided in the parent: every case on disk
+    report = run_study(study, output=tmp_path / "pool.h5", workers=2, progress=False)
+    assert sorted(report.complete) == ["leo-a", "leo-b"] and list(report.failed) == ["low"]
+    assert report.workers == 2 and report.stage_seconds["parent_import"] > 0.0
+    for c in study.cases:
+        assert same_case(read_case(path, c.name), read_case(tmp_path / "pool.h5", c.name)), c.name
+    assert not (tmp_path / "pool.h5.parts").exists()

@@ -6,10 +6,27 @@ JSON keys:
 
 * ``cases_per_s_per_core``: end-to-end throughput of one core running 1-day MEO cases
   (point mass + gravity field 12x12 + Sun + Moon + SRP, 5-minute output, osculating
-  elements, HDF5 written), through ``propagator.study.runner`` in one process, after a
-  warm-up case that absorbs every compilation (numba cache load, element conversions).
-  ``cases_per_s_pool`` / ``pool_workers``: the same cases on a local process pool, start
-  of the workers included (their own warm-up is not excluded; informative only).
+  elements, HDF5 written), through ``propagator.study.runner`` in one process (one
+  core), after a warm-up case that absorbs every compilation (numba cache load, element
+  conversions, first reads of the EOP / ephemeris / gravity files).
+  ``per_case_breakdown_ms``: the mean wall time of one of those cases by stage, from the
+  runner's own stage timers (``RunReport.stage_seconds``): ``setup`` (epoch, initial
+  state, settings, resolved TOML), ``environment_tables`` (rotation and Sun/Moon tables,
+  cached per process), ``propagate`` (force-model preparation, packing and the compiled
+  integration), ``output_conversions`` (elements, ITRF, accelerations), ``hdf5_write``
+  (case group, attributes, datasets, flushes), ``fits``; ``other`` is the rest of the
+  wall time per case (study bookkeeping, plan, file open/close).
+  ``integrate_ms``: ``propagate`` alone for one such case with prebuilt environment
+  tables (force-model preparation, packing and the compiled integration; median of 20),
+  the floor of the per-case time whatever the runner does.
+* ``cases_per_s_per_core_pool``: the same cases on a local process pool, per worker
+  process actually used (``RunReport.workers``), in steady state: the marginal rate
+  (N2 - N1) / (T2 - T1) / workers between a run of N1 = 4 x workers cases and one of N2
+  cases, which removes the fixed costs of a run (starting the workers, their warm-up,
+  opening the file).  ``cases_per_s_per_core_pool_end_to_end``: N2 / T2 / workers with
+  those costs.  ``pool_breakdown_ms``: the marginal stage times per case of the pool
+  runs (stage sums of the N2 run minus those of the N1 run, over N2 - N1; worker stages
+  ``case_from_toml`` and ``worker_file``, parent stage ``parent_import``).
   ``gravity_degree``: 12 with the project's EGM96 degree-120 extract
   (``../shared/data/gravity/EGM96_deg120.gfc``), else 8 (shipped file).
 * ``leo_year_peak_rss_mb`` / ``leo_year_wall_s``: peak resident memory (``resource.
@@ -128,6 +145,39 @@ def _meo_study(n: int) -> str:
     return MEO_STUDY.format(gravity=grav, last=360.0 * (n - 1) / n, n=n)
 
 
+def _breakdown(report, n: int, wall: float) -> dict:
+    """Mean milliseconds per case by stage (``RunReport.stage_seconds``) plus ``other``."""
+    ms = {k: 1000.0 * v / n for k, v in sorted(report.stage_seconds.items())}
+    ms["other"] = 1000.0 * wall / n - sum(v for k, v in ms.items() if k != "parent_import") \
+        if report.workers == 1 else float("nan")
+    return ms
+
+
+def _integrate_ms(case) -> float:
+    """Median wall time [ms] of ``propagate`` for ``case`` with prebuilt environment
+    tables (force-model preparation and packing included, no output conversion)."""
+    from forcemodels.ephemeris import build_sun_moon_table
+    from propagator.integrators.settings import OutputGrid
+    from propagator.propagate import propagate
+    from propagator.rotation_table import build_rotation_table
+    from propagator.study.runner import _integrator_settings, initial_state_gcrf, output_times
+    from propagator.timescales import Epoch
+
+    epoch = Epoch.from_iso(case.config.epoch).to("TT")
+    dur = case.config.duration_seconds()
+    y0 = initial_state_gcrf(case, epoch)
+    rot, eph = build_rotation_table(epoch, 0.0, dur), build_sun_moon_table(epoch, 0.0, dur)
+    settings = _integrator_settings(case)
+    grid = OutputGrid(times_s=output_times(case, dur))
+    times = []
+    for _ in range(21):
+        t0 = time.perf_counter()
+        propagate(epoch, y0, forces=case.forces, duration=dur, settings=settings, output=grid,
+                  rotation_table=rot, ephemeris_table=eph)
+        times.append(time.perf_counter() - t0)
+    return 1000.0 * sorted(times[1:])[len(times[1:]) // 2]
+
+
 def _throughput(n_cases: int, tmp: Path) -> dict:
     from propagator.study.config import parse_study
     from propagator.study.runner import run_study
@@ -142,11 +192,26 @@ def _throughput(n_cases: int, tmp: Path) -> dict:
     rep1 = run_study(study, output=tmp / "inline.h5", workers=1, progress=False, plots=False)
     wall1 = time.perf_counter() - t0
     n_pool = max(2, min(os.cpu_count() or 2, 4))
+    n1 = 4 * n_pool
+    study.cases = cases[:n1]
+    t0 = time.perf_counter()
+    rep_small = run_study(study, output=tmp / "pool_small.h5", workers=n_pool, progress=False, plots=False)
+    wall_small = time.perf_counter() - t0
+    study.cases = cases
     t0 = time.perf_counter()
     rep2 = run_study(study, output=tmp / "pool.h5", workers=n_pool, progress=False, plots=False)
     wall2 = time.perf_counter() - t0
-    return {"n_cases": len(cases), "inline_wall_s": wall1, "pool_wall_s": wall2, "pool_workers": n_pool,
-            "complete": len(rep1.complete) == len(cases) and len(rep2.complete) == len(cases)}
+    used = rep2.workers
+    marginal = (len(cases) - n1) / max(wall2 - wall_small, 1e-9) / used
+    return {"n_cases": len(cases), "inline_wall_s": wall1, "pool_wall_s": wall2, "pool_workers": used,
+            "pool_small_cases": n1, "pool_small_wall_s": wall_small,
+            "per_core_pool": marginal, "per_core_pool_end_to_end": len(cases) / wall2 / used,
+            "breakdown": _breakdown(rep1, len(cases), wall1),
+            "pool_breakdown": {k: 1000.0 * (v - rep_small.stage_seconds.get(k, 0.0)) / (len(cases) - n1)
+                               for k, v in sorted(rep2.stage_seconds.items())},
+            "integrate_ms": _integrate_ms(cases[0]),
+            "complete": (len(rep1.complete) == len(cases) and len(rep2.complete) == len(cases)
+                         and len(rep_small.complete) == n1)}
 
 
 def _leo(days: float, tmp: Path) -> dict:
@@ -168,11 +233,14 @@ def main() -> int:
     tmp = Path(tempfile.mkdtemp(prefix="longarc-bench-batch-"))
     degree = 12 if FIELD_120.is_file() else 8
 
-    tp = _throughput(16 if quick else 48, tmp)
+    tp = _throughput(24 if quick else 96, tmp)
     per_core = tp["n_cases"] / tp["inline_wall_s"]
     rep.values.update({"cases_per_s_per_core": per_core, "cases_per_s_pool": tp["n_cases"] / tp["pool_wall_s"],
+                       "cases_per_s_per_core_pool": tp["per_core_pool"],
+                       "cases_per_s_per_core_pool_end_to_end": tp["per_core_pool_end_to_end"],
                        "pool_workers": tp["pool_workers"], "throughput_cases": tp["n_cases"],
-                       "gravity_degree": degree})
+                       "per_case_breakdown_ms": tp["breakdown"], "pool_breakdown_ms": tp["pool_breakdown"],
+                       "integrate_ms": tp["integrate_ms"], "gravity_degree": degree})
     rep.check("batch/I-O", "benchmark MEO cases complete (inline and pool)", "common practice",
               "yes" if tp["complete"] else "no", tolerance="all complete", passed=tp["complete"])
 
@@ -221,6 +289,15 @@ def main() -> int:
     print(f"\n{'quantity':<38} {'value':>12}")
     print(f"{'cases per second per core (1-d MEO)':<38} {per_core:12.3f}")
     print(f"{'cases per second, pool of ' + str(tp['pool_workers']):<38} {rep.values['cases_per_s_pool']:12.3f}")
+    print(f"{'  per worker, steady state':<38} {tp['per_core_pool']:12.3f}")
+    print(f"{'  per worker, end to end':<38} {tp['per_core_pool_end_to_end']:12.3f}")
+    print("per-case breakdown [ms] (one process):")
+    for k, v in tp["breakdown"].items():
+        print(f"  {k:<36} {v:12.3f}")
+    print(f"  {'(propagate alone, prebuilt tables)':<36} {tp['integrate_ms']:12.3f}")
+    print("per-case breakdown [ms] (pool, marginal, worker and parent stages):")
+    for k, v in tp["pool_breakdown"].items():
+        print(f"  {k:<36} {v:12.3f}")
     print(f"{'1-year LEO peak RSS [MB]':<38} {longest['peak_rss_mb']:12.1f}")
     print(f"{'1-year LEO wall [s]' + (' (scaled)' if longest['days'] != 365 else ''):<38} {year_wall:12.1f}")
     for r in rows:

@@ -45,7 +45,7 @@ import threading
 import time
 import traceback
 import uuid
-from collections import deque
+from collections import OrderedDict, deque
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
@@ -98,6 +98,8 @@ class CaseOutcome:
     part_file: Optional[str] = None
     data: Optional[bytes] = field(default=None, repr=False)
     fit_errors: list[str] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+    """Wall time [s] of each stage of the case (``_StageTimer`` names; for benchmarks)."""
 
 
 @dataclass
@@ -119,6 +121,10 @@ class RunReport:
     wall_s: float = 0.0
     signal_name: str = ""
     where: str = ""
+    workers: int = 1
+    """Processes that computed cases (1 in this process; pool size; Dask worker threads)."""
+    stage_seconds: dict[str, float] = field(default_factory=dict)
+    """Wall time [s] of each stage summed over the computed cases (``CaseOutcome.timings``)."""
 
     @property
     def ok(self) -> bool:
@@ -343,18 +349,97 @@ def _segments(duration: float, segment_s: float) -> list[tuple[float, float]]:
     return [(bounds[k], bounds[k + 1]) for k in range(n)]
 
 
+class _StageTimer:
+    """Accumulates wall time [s] per stage of a case: ``lap(name)`` charges the time since
+    the previous lap to ``name``."""
+
+    __slots__ = ("t", "laps")
+
+    def __init__(self) -> None:
+        self.t = time.perf_counter()
+        self.laps: dict[str, float] = {}
+
+    def lap(self, name: str) -> None:
+        now = time.perf_counter()
+        self.laps[name] = self.laps.get(name, 0.0) + (now - self.t)
+        self.t = now
+
+
+_ENV_CACHE: "OrderedDict[tuple, np.ndarray]" = OrderedDict()
+_ENV_CACHE_SIZE = 8
+"""Environment tables kept per process (least recently used dropped first); a 1-day
+table is a few kB, a 1-year one at most a few MB."""
+
+
+def _env_table(kind: str, epoch_tt: Any, lo: float, hi: float) -> Optional[np.ndarray]:
+    """The rotation (``kind="rotation"``) or Sun/Moon (``"sun_moon"``) table that
+    ``propagator.propagate.propagate`` would build for a run from ``epoch_tt`` over
+    [lo, hi] s, from a per-process cache.
+
+    Cases of a sweep share epoch and span, so the tables (~2.5 ms per case for the
+    IAU 2006/2000A rotation ingredients and the DE421 sets) are built once per process.
+    The table is built by the same function with the same arguments as inside
+    ``propagate`` and only read by the compiled code, so the numbers are bitwise those
+    of a run that builds its own.  Returns None when the build fails: ``propagate`` then
+    builds it and raises its own error.
+    """
+    key = (kind, float(epoch_tt.jd1), float(epoch_tt.jd2), str(epoch_tt.scale), float(lo), float(hi))
+    table = _ENV_CACHE.get(key)
+    if table is not None:
+        _ENV_CACHE.move_to_end(key)
+        return table
+    try:
+        if kind == "rotation":
+            from propagator.rotation_table import build_rotation_table
+
+            table = build_rotation_table(epoch_tt, lo, hi)
+        else:
+            from forcemodels.ephemeris import build_sun_moon_table
+
+            table = build_sun_moon_table(epoch_tt, lo, hi)
+    except Exception:  # let propagate raise it, with its own context
+        return None
+    _ENV_CACHE[key] = table
+    while len(_ENV_CACHE) > _ENV_CACHE_SIZE:
+        _ENV_CACHE.popitem(last=False)
+    return table
+
+
+def _table_needs(case: ResolvedCase, settings: Any, events: list[Any]) -> tuple[bool, bool]:
+    """(rotation table needed, Sun/Moon table needed) for the case's force models and
+    events, as ``propagate`` decides (``ForceModel.needs``; shadow events, explicit or
+    added by ``restart_at_shadow``).  Passing a table that is not needed changes nothing
+    (the models' needs set the flags of the compiled code), so this may err on the side
+    of building."""
+    from forcemodels import registry
+    from forcemodels.environment import NEED_MOON, NEED_ROTATION, NEED_SUN
+
+    needs: set[str] = set()
+    for name, _ in case.forces:
+        try:
+            needs |= set(registry.get(name).needs)
+        except ValueError:  # unknown model: propagate reports it
+            pass
+    shadow = (any(ev.kind in ("penumbra", "umbra") for ev in events)
+              or bool(getattr(settings, "restart_at_shadow", None)))
+    return NEED_ROTATION in needs, bool(needs & {NEED_SUN, NEED_MOON}) or shadow
+
+
 def execute_case(case: ResolvedCase, store: StudyStore, *, segment_s: float = 86400.0,
-                 stop_requested: Callable[[], bool] = lambda: False) -> CaseOutcome:
+                 stop_requested: Callable[[], bool] = lambda: False,
+                 case_toml: Optional[str] = None) -> CaseOutcome:
     """Propagate one case into ``store`` (its group is created, filled and finished).
 
     Never raises for a failure of the case itself: the error and traceback go to the
     file (status ``failed``) and into the returned :class:`CaseOutcome`.  A stop request
-    (checked between segments) marks the case ``interrupted``.
+    (checked between segments) marks the case ``interrupted``.  ``case_toml``: the
+    case's ``to_toml()`` text when the caller has it already (stored as
+    ``case_config_toml``).
     """
     t_wall = time.perf_counter()
     name = case.name
     try:
-        return _execute(case, store, segment_s, stop_requested, t_wall)
+        return _execute(case, store, segment_s, stop_requested, t_wall, case_toml)
     except CaseInterrupted as exc:
         _mark_interrupted(store, name, str(exc) or "interrupted")
         return CaseOutcome(name, STATUS_INTERRUPTED, error=str(exc), wall_s=time.perf_counter() - t_wall)
@@ -380,11 +465,13 @@ def _mark_interrupted(store: StudyStore, name: str, why: str) -> None:
 
 
 def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_requested: Callable[[], bool],
-             t_wall: float) -> CaseOutcome:
+             t_wall: float, case_toml: Optional[str] = None) -> CaseOutcome:
     from propagator.propagate import per_model_accelerations, propagate
     from propagator.integrators.settings import OutputGrid
     from propagator.timescales import Epoch
 
+    tm = _StageTimer()
+    tm.t = t_wall
     cfg = case.config
     name = case.name
     epoch = Epoch.from_iso(cfg.epoch)
@@ -411,9 +498,14 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
         "segment_length_s": float(segment_s),
         "duration_s": float(duration),
     }
+    need_rot, need_eph = _table_needs(case, settings, events)
+    if case_toml is None:
+        case_toml = case.to_toml()
+    tm.lap("setup")
     writer = store.begin_case(name, epoch_iso=cfg.epoch, epoch_jd1=epoch.jd1, epoch_jd2=epoch.jd2,
-                              epoch_scale=epoch.scale, case_config_toml=case.to_toml(),
+                              epoch_scale=epoch.scale, case_config_toml=case_toml,
                               force_models=case.force_dicts(), extra_attrs=extra)
+    tm.lap("hdf5_write")
     totals = {"evaluations": 0, "accepted_steps": 0, "rejected_steps": 0, "dense_output_steps": 0,
               "restarts": 0}
     min_step, max_step = math.inf, 0.0
@@ -432,8 +524,14 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
         add_end = local.size == 0 or local[-1] != tb - ta
         req = np.append(local, tb - ta) if add_end else local
         ep_k = epoch_tt + ta if ta != 0.0 else epoch_tt
+        lo, hi = min(0.0, tb - ta), max(0.0, tb - ta)
+        rot = _env_table("rotation", ep_k, lo, hi) if need_rot else None
+        eph = _env_table("sun_moon", ep_k, lo, hi) if need_eph else None
+        tm.lap("environment_tables")
         res = propagate(ep_k, y, forces=case.forces, duration=tb - ta, settings=settings,
-                        output=OutputGrid(times_s=req), stm=want_stm, events=events)
+                        output=OutputGrid(times_s=req), stm=want_stm, events=events,
+                        rotation_table=rot, ephemeris_table=eph)
+        tm.lap("propagate")
         if not metadata:
             metadata = res.model_metadata
         st = res.stats
@@ -459,12 +557,14 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
                 kw["elements"] = cart_to_kep(states) if gm is None else cart_to_kep(states, gm)
             if cfg.output.accelerations:
                 kw["accelerations"] = per_model_accelerations(res, res.times[:n_keep], states)
+            tm.lap("output_conversions")
             writer.append(sel[:n_keep], states, stm=stm_block, **kw)
             n_written += n_keep
         rec = [e for e in res.events]
         if rec:
             writer.add_events(np.array([ta + e.t_s for e in rec]), [e.name for e in rec],
                               np.array([e.state[:6] for e in rec]))
+        tm.lap("hdf5_write")
         if not res.ok or res.status != 0:
             if any(e.name == _STOP_EVENT_NAME for e in rec):
                 t_stop = ta + next(e.t_s for e in rec if e.name == _STOP_EVENT_NAME)
@@ -481,6 +581,7 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
     fit_errors: list[str] = []
     if not failure and cfg.fitting is not None:
         fit_errors = _run_fits(case, writer, epoch_tt)
+        tm.lap("fits")
     stats = {"nfev": totals["evaluations"], "accepted": totals["accepted_steps"],
              "rejected": totals["rejected_steps"], "dense_output_steps": totals["dense_output_steps"],
              "restarts": totals["restarts"], "min_step_s": (min_step if math.isfinite(min_step) else 0.0),
@@ -490,10 +591,12 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
     writer.finish(stats, status=STATUS_FAILED if failure else STATUS_COMPLETE)
     if failure:
         store.mark_failed(name, failure)
+    tm.lap("hdf5_write")
+    if failure:
         return CaseOutcome(name, STATUS_FAILED, error=failure, wall_s=time.perf_counter() - t_wall,
-                           n_samples=n_written)
+                           n_samples=n_written, timings=tm.laps)
     return CaseOutcome(name, STATUS_COMPLETE, wall_s=time.perf_counter() - t_wall, n_samples=n_written,
-                       fit_errors=fit_errors)
+                       fit_errors=fit_errors, timings=tm.laps)
 
 
 # ======================================================================================
@@ -605,10 +708,35 @@ def _run_fits(case: ResolvedCase, writer: Any, epoch_tt: Any) -> list[str]:
 # ======================================================================================
 # Task functions (importable: process pools and Dask workers load them by reference)
 # ======================================================================================
-def run_case(case_toml: str, name: str, part_path: str, study_name: str, segment_s: float) -> CaseOutcome:
-    """Run one case (given as resolved TOML) into its own HDF5 file ``part_path``.
+IN_MEMORY_MAX_BYTES = 16 * 2 ** 20
+"""Cases whose time series are estimated below this size [bytes] travel from a worker
+process to the parent as an in-memory HDF5 file image; larger ones through a part file
+on disk, so that a long arc never has to be in memory whole."""
 
-    The worker-side entry point of local process pools.
+
+def output_bytes_estimate(case: ResolvedCase) -> float:
+    """Uncompressed size [bytes] of the time series the case will write: samples x
+    (time + GCRF state + the optional ITRF state, elements, STM, per-model
+    accelerations) x 8 bytes.  ``inf`` when it cannot be told (the case will fail)."""
+    try:
+        cfg = case.config
+        out = cfg.output
+        n = len(out.times_s) if out.times_s is not None else abs(cfg.duration_seconds()) / out.step_s + 2.0
+        cols = (7 + 6 * bool(out.itrf) + 6 * bool(out.elements) + 36 * bool(out.stm)
+                + (3 * len(case.forces) if out.accelerations else 0))
+        return float(n) * cols * 8.0
+    except Exception:
+        return math.inf
+
+
+def run_case(case_toml: str, name: str, part_path: Optional[str], study_name: str, segment_s: float) -> CaseOutcome:
+    """Run one case (given as resolved TOML) into its own HDF5 file ``part_path``, or,
+    with ``part_path=None``, into an in-memory HDF5 file returned as bytes in
+    ``CaseOutcome.data`` (for short cases: no file system round trip).
+
+    The worker-side entry point of local process pools.  ``CaseOutcome.timings`` gets
+    the worker's own stages (``case_from_toml``, ``worker_file``) besides those of the
+    case.
     """
     t0 = time.perf_counter()
     try:
@@ -616,15 +744,33 @@ def run_case(case_toml: str, name: str, part_path: str, study_name: str, segment
     except Exception as exc:
         return CaseOutcome(name, STATUS_FAILED, error=f"{type(exc).__name__}: {exc}",
                            traceback=traceback.format_exc(), wall_s=time.perf_counter() - t0)
-    with StudyStore(part_path, study_name=study_name, mode="w") as store:
-        outcome = execute_case(case, store, segment_s=segment_s)
+    t1 = time.perf_counter()
+    data = None
+    in_memory = part_path is None
+    with StudyStore(part_path or f"{name}.h5", study_name=study_name, mode="w", in_memory=in_memory) as store:
+        t2 = time.perf_counter()
+        outcome = execute_case(case, store, segment_s=segment_s, case_toml=case_toml)
+        t3 = time.perf_counter()
+        if in_memory:
+            data = store.file_image()
+    t4 = time.perf_counter()
     outcome.part_file = part_path
+    outcome.data = data
+    outcome.timings["case_from_toml"] = t1 - t0
+    outcome.timings["worker_file"] = (t2 - t1) + (t4 - t3)
     return outcome
 
 
 def run_case_to_bytes(case_toml: str, name: str, study_name: str, segment_s: float) -> CaseOutcome:
     """Run one case and return its HDF5 file as bytes in ``CaseOutcome.data`` (Dask
-    workers need not share a file system with the client)."""
+    workers need not share a file system with the client).  Short cases are written in
+    memory; long ones (:data:`IN_MEMORY_MAX_BYTES`) to a temporary file first."""
+    try:
+        small = output_bytes_estimate(case_from_toml(name, case_toml)) <= IN_MEMORY_MAX_BYTES
+    except Exception:
+        small = True  # run_case reports the error
+    if small:
+        return run_case(case_toml, name, None, study_name, segment_s)
     tmp = Path(tempfile.mkdtemp(prefix="longarc-case-"))
     try:
         part = tmp / "case.h5"
@@ -638,8 +784,30 @@ def run_case_to_bytes(case_toml: str, name: str, study_name: str, segment_s: flo
 
 
 def _worker_init() -> None:
-    """Worker processes leave SIGINT to the parent (which stops them itself)."""
+    """Worker processes leave SIGINT to the parent (which stops them itself) and warm up
+    (:func:`_warm_up`) before taking their first case."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _warm_up()
+
+
+def _warm_up() -> None:
+    """Load what every case needs once per process: the composed numba module's cached
+    machine code (one short two-body propagation: the compiled entry point has one
+    signature whatever the force models), the EOP and DE421 data (one small rotation and
+    Sun/Moon table).  ~1 s in a fresh process; without it the first case of each worker
+    pays it.  Best effort: any failure is left for the cases to report."""
+    try:
+        from forcemodels.ephemeris import build_sun_moon_table
+        from propagator.propagate import propagate
+        from propagator.rotation_table import build_rotation_table
+        from propagator.timescales import Epoch
+
+        epoch = Epoch.from_iso("2020-01-01T00:00:00 TT")  # inside the EOP and DE421 spans (common practice)
+        build_rotation_table(epoch, 0.0, 60.0)
+        build_sun_moon_table(epoch, 0.0, 60.0)
+        propagate(epoch, [7.0e6, 0.0, 0.0, 0.0, 7.5e3, 0.0], forces=("central_gravity",), duration=60.0)
+    except Exception:  # pragma: no cover - the cases report their own errors
+        pass
 
 
 # ======================================================================================
@@ -737,6 +905,7 @@ def run_study(study: Study, *, output: str | os.PathLike | None = None, workers:
                 else:
                     n = min(n_workers, len(todo))
                     report.where = f"{n} local worker processes"
+                    report.workers = n
                     _run_pool(todo, store, out, study.name, segment_s, n, stop, bar, report)
             report.signal_name = stop.signal_name
     finally:
@@ -749,6 +918,8 @@ def run_study(study: Study, *, output: str | os.PathLike | None = None, workers:
 
 
 def _record(outcome: CaseOutcome, report: RunReport, bar: "_Progress") -> None:
+    for k, v in outcome.timings.items():
+        report.stage_seconds[k] = report.stage_seconds.get(k, 0.0) + v
     if outcome.status == STATUS_COMPLETE:
         report.complete.append(outcome.name)
         if outcome.fit_errors:
@@ -786,9 +957,10 @@ def _run_pool(todo: list[ResolvedCase], store: StudyStore, out: Path, study_name
 
     def submit() -> None:
         case = queue.popleft()
-        part = parts / f"{case.name}.{uuid.uuid4().hex[:8]}.h5"
+        part = (None if output_bytes_estimate(case) <= IN_MEMORY_MAX_BYTES
+                else str(parts / f"{case.name}.{uuid.uuid4().hex[:8]}.h5"))
         try:
-            running[pool.submit(run_case, case.to_toml(), case.name, str(part), study_name, segment_s)] = case.name
+            running[pool.submit(run_case, case.to_toml(), case.name, part, study_name, segment_s)] = case.name
         except BrokenProcessPool as exc:  # the pool died: every remaining case fails with the reason
             msg = f"worker pool broken: {exc}"
             for name in [case.name] + [c.name for c in queue]:
@@ -829,9 +1001,9 @@ def _run_pool(todo: list[ResolvedCase], store: StudyStore, out: Path, study_name
         shutil.rmtree(parts, ignore_errors=True)
 
 
-def _collect(fut: Any, name: str, store: StudyStore, report: RunReport, bar: "_Progress",
-             data_part: Optional[Path] = None) -> None:
-    """Import a finished case (its part file) into the study file and record it."""
+def _collect(fut: Any, name: str, store: StudyStore, report: RunReport, bar: "_Progress") -> None:
+    """Import a finished case (its file image or part file) into the study file and
+    record it."""
     try:
         outcome: CaseOutcome = fut.result()
     except Exception as exc:  # the worker died or the task could not run
@@ -839,13 +1011,13 @@ def _collect(fut: Any, name: str, store: StudyStore, report: RunReport, bar: "_P
         store.mark_failed(name, msg, "".join(traceback.format_exception(exc)))
         _record(CaseOutcome(name, STATUS_FAILED, error=msg), report, bar)
         return
+    t0 = time.perf_counter()
     part = Path(outcome.part_file) if outcome.part_file else None
-    if outcome.data is not None and data_part is not None:
-        data_part.write_bytes(outcome.data)
-        part = data_part
-        outcome.data = None
+    data, outcome.data = outcome.data, None
     try:
-        if part is not None and part.exists():
+        if data is not None:
+            store.import_case_from(data, name)
+        elif part is not None and part.exists():
             store.import_case_from(part, name)
         elif outcome.status == STATUS_FAILED:
             store.mark_failed(name, outcome.error, outcome.traceback)
@@ -854,6 +1026,7 @@ def _collect(fut: Any, name: str, store: StudyStore, report: RunReport, bar: "_P
     finally:
         if part is not None:
             part.unlink(missing_ok=True)
+    outcome.timings["parent_import"] = time.perf_counter() - t0
     _record(outcome, report, bar)
 
 
@@ -874,9 +1047,9 @@ def _run_dask(client: Any, todo: list[ResolvedCase], store: StudyStore, study_na
     from distributed import wait as dwait
 
     slots = max(1, sum(client.nthreads().values()))
+    report.workers = slots
     queue = deque(todo)
     running: dict[Any, str] = {}
-    tmp = Path(tempfile.mkdtemp(prefix="longarc-dask-", dir=store.path.parent))
     try:
         while queue or running:
             while queue and len(running) < slots and not stop.is_set():
@@ -892,7 +1065,7 @@ def _run_dask(client: Any, todo: list[ResolvedCase], store: StudyStore, study_na
                 continue
             for fut in done:
                 name = running.pop(fut)
-                _collect(fut, name, store, report, bar, data_part=tmp / f"{name}.h5")
+                _collect(fut, name, store, report, bar)
                 fut.release()
     finally:
         if stop.is_set():
@@ -901,7 +1074,6 @@ def _run_dask(client: Any, todo: list[ResolvedCase], store: StudyStore, study_na
                 _mark_interrupted(store, name, f"interrupted by {stop.signal_name or 'a stop request'}")
                 report.interrupted.append(name)
             report.not_started.extend(c.name for c in queue)
-        shutil.rmtree(tmp, ignore_errors=True)
 
 
 class _Progress:
