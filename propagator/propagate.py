@@ -20,6 +20,7 @@ import pydantic
 
 from forcemodels import compose, registry
 from forcemodels.environment import FLAG_SUN, NEED_MOON, NEED_ROTATION, NEED_SUN
+from propagator import table_cache
 from propagator.integrators import stepper as _st
 from propagator.integrators.settings import EventSpec, IntegratorSettings, OutputGrid
 from propagator.integrators.tableaus import Tableau, get_tableau
@@ -250,11 +251,9 @@ def propagate(epoch: Any, state0: Sequence[float] | np.ndarray,
     rot_table = rotation_table
     eph_table = ephemeris_table
     if NEED_ROTATION in needs and rot_table is None:
-        from propagator.rotation_table import build_rotation_table
-        rot_table = build_rotation_table(epoch, lo, hi)
+        rot_table = table_cache.rotation_table(epoch, lo, hi)
     if (needs & {NEED_SUN, NEED_MOON} or shadow_events) and eph_table is None:
-        from forcemodels.ephemeris import build_sun_moon_table
-        eph_table = build_sun_moon_table(epoch, lo, hi)
+        eph_table = table_cache.sun_moon_table(epoch, lo, hi)
     sens = [(str(m), str(p)) for m, p in sensitivities]
     forces_tuple = compose.build_forces(prepared, rot_table, eph_table, sens)
     if shadow_events:

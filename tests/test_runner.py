@@ -613,25 +613,27 @@ def test_fast_dataset_creation_matches_h5py(tmp_path):
 
 
 def test_environment_tables_are_cached_per_epoch_and_span():
+    """propagate() takes its tables from propagator.table_cache: same builder, same
+    arguments, so a sweep's cases share them with bitwise identical results."""
     from forcemodels.ephemeris import build_sun_moon_table
+    from propagator import table_cache
     from propagator.rotation_table import build_rotation_table
-    from propagator.study import runner
     from propagator.timescales import Epoch
 
     e1 = Epoch.from_iso("2024-03-20T12:00:00 TT")
     e2 = Epoch.from_iso("2024-03-21T12:00:00 TT")
-    a = runner._env_table("rotation", e1, 0.0, 3600.0)
-    assert runner._env_table("rotation", e1, 0.0, 3600.0) is a  # cached
+    a = table_cache.rotation_table(e1, 0.0, 3600.0)
+    assert table_cache.rotation_table(e1, 0.0, 3600.0) is a  # cached
     assert np.array_equal(a, build_rotation_table(e1, 0.0, 3600.0))  # the table propagate builds
-    b = runner._env_table("rotation", e2, 0.0, 3600.0)
+    b = table_cache.rotation_table(e2, 0.0, 3600.0)
     assert not np.array_equal(a, b)  # another epoch is another table
-    assert not np.array_equal(a, runner._env_table("rotation", e1, 0.0, 7200.0))
-    s = runner._env_table("sun_moon", e1, -3600.0, 0.0)
+    assert not np.array_equal(a, table_cache.rotation_table(e1, 0.0, 7200.0))
+    s = table_cache.sun_moon_table(e1, -3600.0, 0.0)
     assert np.array_equal(s, build_sun_moon_table(e1, -3600.0, 0.0))
-    for _ in range(runner._ENV_CACHE_SIZE + 2):  # bounded
+    for _ in range(table_cache.CACHE_SIZE + 2):  # bounded
         e1 = e1 + 60.0
-        runner._env_table("sun_moon", e1, 0.0, 60.0)
-    assert len(runner._ENV_CACHE) <= runner._ENV_CACHE_SIZE
+        table_cache.sun_moon_table(e1, 0.0, 60.0)
+    assert len(table_cache._CACHE) <= table_cache.CACHE_SIZE
 
 
 def test_in_memory_image_and_part_file_give_the_same_case(inline_run, tmp_path):

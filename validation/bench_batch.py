@@ -11,9 +11,9 @@ JSON keys:
   conversions, first reads of the EOP / ephemeris / gravity files).
   ``per_case_breakdown_ms``: the mean wall time of one of those cases by stage, from the
   runner's own stage timers (``RunReport.stage_seconds``): ``setup`` (epoch, initial
-  state, settings, resolved TOML), ``environment_tables`` (rotation and Sun/Moon tables,
-  cached per process), ``propagate`` (force-model preparation, packing and the compiled
-  integration), ``output_conversions`` (elements, ITRF, accelerations), ``hdf5_write``
+  state, settings, resolved TOML), ``propagate`` (force-model preparation, the rotation
+  and Sun/Moon tables (cached per process, ``propagator.table_cache``), packing and the
+  compiled integration), ``output_conversions`` (elements, ITRF, accelerations), ``hdf5_write``
   (case group, attributes, datasets, flushes), ``fits``; ``other`` is the rest of the
   wall time per case (study bookkeeping, plan, file open/close).
   ``integrate_ms``: ``propagate`` alone for one such case with prebuilt environment

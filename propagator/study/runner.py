@@ -45,7 +45,7 @@ import threading
 import time
 import traceback
 import uuid
-from collections import OrderedDict, deque
+from collections import deque
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
@@ -365,66 +365,6 @@ class _StageTimer:
         self.t = now
 
 
-_ENV_CACHE: "OrderedDict[tuple, np.ndarray]" = OrderedDict()
-_ENV_CACHE_SIZE = 8
-"""Environment tables kept per process (least recently used dropped first); a 1-day
-table is a few kB, a 1-year one at most a few MB."""
-
-
-def _env_table(kind: str, epoch_tt: Any, lo: float, hi: float) -> Optional[np.ndarray]:
-    """The rotation (``kind="rotation"``) or Sun/Moon (``"sun_moon"``) table that
-    ``propagator.propagate.propagate`` would build for a run from ``epoch_tt`` over
-    [lo, hi] s, from a per-process cache.
-
-    Cases of a sweep share epoch and span, so the tables (~2.5 ms per case for the
-    IAU 2006/2000A rotation ingredients and the DE421 sets) are built once per process.
-    The table is built by the same function with the same arguments as inside
-    ``propagate`` and only read by the compiled code, so the numbers are bitwise those
-    of a run that builds its own.  Returns None when the build fails: ``propagate`` then
-    builds it and raises its own error.
-    """
-    key = (kind, float(epoch_tt.jd1), float(epoch_tt.jd2), str(epoch_tt.scale), float(lo), float(hi))
-    table = _ENV_CACHE.get(key)
-    if table is not None:
-        _ENV_CACHE.move_to_end(key)
-        return table
-    try:
-        if kind == "rotation":
-            from propagator.rotation_table import build_rotation_table
-
-            table = build_rotation_table(epoch_tt, lo, hi)
-        else:
-            from forcemodels.ephemeris import build_sun_moon_table
-
-            table = build_sun_moon_table(epoch_tt, lo, hi)
-    except Exception:  # let propagate raise it, with its own context
-        return None
-    _ENV_CACHE[key] = table
-    while len(_ENV_CACHE) > _ENV_CACHE_SIZE:
-        _ENV_CACHE.popitem(last=False)
-    return table
-
-
-def _table_needs(case: ResolvedCase, settings: Any, events: list[Any]) -> tuple[bool, bool]:
-    """(rotation table needed, Sun/Moon table needed) for the case's force models and
-    events, as ``propagate`` decides (``ForceModel.needs``; shadow events, explicit or
-    added by ``restart_at_shadow``).  Passing a table that is not needed changes nothing
-    (the models' needs set the flags of the compiled code), so this may err on the side
-    of building."""
-    from forcemodels import registry
-    from forcemodels.environment import NEED_MOON, NEED_ROTATION, NEED_SUN
-
-    needs: set[str] = set()
-    for name, _ in case.forces:
-        try:
-            needs |= set(registry.get(name).needs)
-        except ValueError:  # unknown model: propagate reports it
-            pass
-    shadow = (any(ev.kind in ("penumbra", "umbra") for ev in events)
-              or bool(getattr(settings, "restart_at_shadow", None)))
-    return NEED_ROTATION in needs, bool(needs & {NEED_SUN, NEED_MOON}) or shadow
-
-
 def execute_case(case: ResolvedCase, store: StudyStore, *, segment_s: float = 86400.0,
                  stop_requested: Callable[[], bool] = lambda: False,
                  case_toml: Optional[str] = None) -> CaseOutcome:
@@ -498,7 +438,6 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
         "segment_length_s": float(segment_s),
         "duration_s": float(duration),
     }
-    need_rot, need_eph = _table_needs(case, settings, events)
     if case_toml is None:
         case_toml = case.to_toml()
     tm.lap("setup")
@@ -524,13 +463,8 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
         add_end = local.size == 0 or local[-1] != tb - ta
         req = np.append(local, tb - ta) if add_end else local
         ep_k = epoch_tt + ta if ta != 0.0 else epoch_tt
-        lo, hi = min(0.0, tb - ta), max(0.0, tb - ta)
-        rot = _env_table("rotation", ep_k, lo, hi) if need_rot else None
-        eph = _env_table("sun_moon", ep_k, lo, hi) if need_eph else None
-        tm.lap("environment_tables")
         res = propagate(ep_k, y, forces=case.forces, duration=tb - ta, settings=settings,
-                        output=OutputGrid(times_s=req), stm=want_stm, events=events,
-                        rotation_table=rot, ephemeris_table=eph)
+                        output=OutputGrid(times_s=req), stm=want_stm, events=events)
         tm.lap("propagate")
         if not metadata:
             metadata = res.model_metadata
