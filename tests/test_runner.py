@@ -674,3 +674,29 @@ def test_process_pool_through_part_files_gives_identical_numbers(inline_run, tmp
     for c in study.cases:
         assert same_case(read_case(path, c.name), read_case(tmp_path / "pool.h5", c.name)), c.name
     assert not (tmp_path / "pool.h5.parts").exists()
+
+
+def test_shadow_events_are_labelled_entry_and_exit():
+    """Stored shadow events say entry or exit; checked against the illumination fraction
+    (forcemodels.shadow, conical model) just before and after each crossing."""
+    from forcemodels.ephemeris import sun_moon_positions
+    from forcemodels.shadow import illumination_nb
+    from propagator.elements import kep_to_cart
+    from propagator.integrators.settings import EventSpec
+    from propagator.propagate import propagate
+    from propagator.study.runner import _event_label
+    from propagator.timescales import Epoch
+
+    epoch = Epoch.from_iso("2024-03-20T12:00:00 TT")  # equinox: a LEO passes the shadow each orbit
+    y0 = kep_to_cart(np.array([7.0e6, 0.001, math.radians(20.0), 0.0, 0.0, 0.0]))
+    res = propagate(epoch, y0, forces=[("central_gravity", {})], duration=4 * 3600.0,
+                    events=[EventSpec(kind="penumbra"), EventSpec(kind="umbra")])
+    labels = [_event_label(e) for e in res.events]
+    assert {"penumbra_entry", "penumbra_exit", "umbra_entry", "umbra_exit"} <= set(labels), labels
+    for e, label in zip(res.events, labels):
+        nu = []
+        for dt in (-20.0, 20.0):
+            r = propagate(epoch, y0, forces=[("central_gravity", {})], duration=e.t_s + dt).state_final[:3]
+            sun, _ = sun_moon_positions(epoch, np.array([e.t_s + dt]))
+            nu.append(illumination_nb(r, sun[0]))
+        assert (nu[1] < nu[0]) == label.endswith("_entry"), (label, nu)

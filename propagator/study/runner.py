@@ -365,6 +365,17 @@ class _StageTimer:
         self.t = now
 
 
+def _event_label(event: Any) -> str:
+    """Name stored for an event; shadow-boundary crossings say whether they enter or leave.
+
+    The shadow event functions are positive on the sunlit side of their boundary, so a
+    falling crossing (in physical time, also for backward runs) is an entry.
+    """
+    if event.kind in ("penumbra", "umbra") and event.name == event.kind:
+        return f"{event.kind}_{'exit' if event.rising else 'entry'}"
+    return event.name
+
+
 def execute_case(case: ResolvedCase, store: StudyStore, *, segment_s: float = 86400.0,
                  stop_requested: Callable[[], bool] = lambda: False,
                  case_toml: Optional[str] = None) -> CaseOutcome:
@@ -496,7 +507,7 @@ def _execute(case: ResolvedCase, store: StudyStore, segment_s: float, stop_reque
             n_written += n_keep
         rec = [e for e in res.events]
         if rec:
-            writer.add_events(np.array([ta + e.t_s for e in rec]), [e.name for e in rec],
+            writer.add_events(np.array([ta + e.t_s for e in rec]), [_event_label(e) for e in rec],
                               np.array([e.state[:6] for e in rec]))
         tm.lap("hdf5_write")
         if not res.ok or res.status != 0:
