@@ -24,8 +24,10 @@ interval containing t.  Default node spacing 3600 s, measured against direct pye
 0.0015 mm (1 h), 0.0017 mm (2 h), 0.0043 mm (3 h), 0.033 mm (6 h); at <= 2 h the
 error is at the float64 floor of the reference itself.  1 h costs ~2 ms of pyerfa per
 day of arc to build and 8.8e3 nodes x 7 doubles = 0.5 MB per year; one evaluation
-costs ~0.13 us.  (This relies on the EOP interpolant being smooth: see
-`propagator.eop` for why it is a cubic spline.)
+costs ~0.08 us (measured, numba loop on the 2-core machine; ~0.10 us before the
+Lagrange weights were formed once and the polar-motion trig replaced by Taylor
+polynomials).  (This relies on the EOP interpolant being smooth: see `propagator.eop`
+for why it is a cubic spline.)
 
 Table layout (flat float64): a header of `HEADER_LEN` values (indices ``H_*`` below)
 followed by ``n_nodes`` rows of ``n_fields`` values (fields ``F_*``), row-major.
@@ -94,6 +96,7 @@ F_UT1_TT = 6
 N_FIELDS = 7
 
 _ERA_FRAC_RATE = ERA_RATE_EXCESS_TURNS_PER_UT1_DAY
+_INV_DAY = 1.0 / SECONDS_PER_DAY  # multiplication instead of division (rounding-level change)
 
 
 def build_rotation_table(
@@ -173,7 +176,7 @@ def _stencil(t, table):
     t0 = table[H_T0]
     step = table[H_STEP]
     n = int(table[H_N_NODES])
-    x = (t - t0) / step
+    x = (t - t0) * (1.0 / step)  # the reciprocal is off the t-dependent path (<= 1 ulp change)
     if not (x >= _PAD - 1.0 and x <= n - _PAD):  # also rejects NaN
         raise ValueError("rotation table: t outside the tabulated span")
     j0 = min(int(math.floor(x)) - (_PAD - 1), n - N_POINTS)
@@ -226,15 +229,86 @@ def _interp(t, table):
 def _era(t, table, ut1_minus_tt):
     """Earth rotation angle [rad] at t (IERS Conventions 2010 eq. 5.15), split as in
     ERFA era00: ERA = 2 pi (frac(d1) + frac(d2) + 0.7790572732640 + 0.00273781191135448 Tu)."""
-    k = math.floor(t / SECONDS_PER_DAY)
-    rem = t - k * SECONDS_PER_DAY  # exact
+    k = math.floor(t * _INV_DAY)
+    rem = t - k * SECONDS_PER_DAY  # exact (rem may leave [0, 86400) by rounding: harmless)
     d1 = table[H_TT_DAYS] + k  # half-integer days from J2000 (exact)
-    d2 = table[H_TT_FRAC] + (rem + ut1_minus_tt) / SECONDS_PER_DAY
+    d2 = table[H_TT_FRAC] + (rem + ut1_minus_tt) * _INV_DAY
     tu = d1 + d2
     f = (d1 - math.floor(d1)) + (d2 - math.floor(d2))
     turns = f + ERA_J2000_TURNS + _ERA_FRAC_RATE * tu
     era = TWO_PI * (turns - math.floor(turns))
     return era
+
+
+# 1 / prod_{m != k} (k - m) for the 6 nodes 0..5 (Lagrange denominators, exact integers)
+_INV_DEN0 = -1.0 / 120.0
+_INV_DEN1 = 1.0 / 24.0
+_INV_DEN2 = -1.0 / 12.0
+_INV_DEN3 = 1.0 / 12.0
+_INV_DEN4 = -1.0 / 24.0
+_INV_DEN5 = 1.0 / 120.0
+_SMALL_ANGLE = 1e-3
+"""Below this |angle| [rad] cos/sin come from their Taylor polynomials (see `_cos_sin`)."""
+
+
+@njit
+def _cos_sin(a):
+    """(cos a, sin a); for |a| < 1e-3 rad (polar motion, s': < 1e-5 rad) the Taylor
+    polynomials cos = 1 - a^2/2 + a^4/24, sin = a - a^3/6 + a^5/120, whose truncation
+    errors (a^6/720 < 1.4e-21 and a^7/5040 < 2e-22 |a|) are far below the float64
+    rounding of the results (common practice; checked against libm in the tests)."""
+    if abs(a) < _SMALL_ANGLE:
+        a2 = a * a
+        return 1.0 + a2 * (-0.5 + a2 * (1.0 / 24.0)), a * (1.0 + a2 * (-1.0 / 6.0 + a2 * (1.0 / 120.0)))
+    return math.cos(a), math.sin(a)
+
+
+@njit
+def _interp_fields(t, table):
+    """Interpolated (X, Y, s, xp, yp, s', UT1-TT) at t: the same 6-point Lagrange
+    interpolant as `_interp`, with the six basis weights formed once from prefix and
+    suffix products of (u - m) and the constant denominators (no divisions)."""
+    hdr, j0, u = _stencil(t, table)
+    nf = int(table[H_N_FIELDS])
+    d0 = u
+    d1 = u - 1.0
+    d2 = u - 2.0
+    d3 = u - 3.0
+    d4 = u - 4.0
+    d5 = u - 5.0
+    p2 = d0 * d1
+    p3 = p2 * d2
+    p4 = p3 * d3
+    s3 = d4 * d5
+    s2 = d3 * s3
+    s1 = d2 * s2
+    w0 = (d1 * s1) * _INV_DEN0
+    w1 = (d0 * s1) * _INV_DEN1
+    w2 = (p2 * s2) * _INV_DEN2
+    w3 = (p3 * s3) * _INV_DEN3
+    w4 = (p4 * d5) * _INV_DEN4
+    w5 = (p4 * d4) * _INV_DEN5
+    b0 = hdr + j0 * nf
+    b1 = b0 + nf
+    b2 = b1 + nf
+    b3 = b2 + nf
+    b4 = b3 + nf
+    b5 = b4 + nf
+    x = (w0 * table[b0 + F_X] + w1 * table[b1 + F_X] + w2 * table[b2 + F_X]
+         + w3 * table[b3 + F_X] + w4 * table[b4 + F_X] + w5 * table[b5 + F_X])
+    y = (w0 * table[b0 + F_Y] + w1 * table[b1 + F_Y] + w2 * table[b2 + F_Y]
+         + w3 * table[b3 + F_Y] + w4 * table[b4 + F_Y] + w5 * table[b5 + F_Y])
+    s = (w0 * table[b0 + F_S] + w1 * table[b1 + F_S] + w2 * table[b2 + F_S]
+         + w3 * table[b3 + F_S] + w4 * table[b4 + F_S] + w5 * table[b5 + F_S])
+    xp = (w0 * table[b0 + F_XP] + w1 * table[b1 + F_XP] + w2 * table[b2 + F_XP]
+          + w3 * table[b3 + F_XP] + w4 * table[b4 + F_XP] + w5 * table[b5 + F_XP])
+    yp = (w0 * table[b0 + F_YP] + w1 * table[b1 + F_YP] + w2 * table[b2 + F_YP]
+          + w3 * table[b3 + F_YP] + w4 * table[b4 + F_YP] + w5 * table[b5 + F_YP])
+    sp = (w0 * table[b0 + F_SP] + w1 * table[b1 + F_SP] + w2 * table[b2 + F_SP]
+          + w3 * table[b3 + F_SP] + w4 * table[b4 + F_SP] + w5 * table[b5 + F_SP])
+    dut = (w0 * table[b0 + F_UT1_TT] + w1 * table[b1 + F_UT1_TT] + w2 * table[b2 + F_UT1_TT]
+           + w3 * table[b3 + F_UT1_TT] + w4 * table[b4 + F_UT1_TT] + w5 * table[b5 + F_UT1_TT])
+    return x, y, s, xp, yp, sp, dut
 
 
 @njit
@@ -244,7 +318,7 @@ def gcrf_to_itrf_nb(t, table, R_out):
     ``R_out``: float64 array of length >= 9 (e.g. ``env[ENV_ROT:ENV_ROT+9]``); element
     3*i + j is R[i, j].  Method: module docstring.  Raises ValueError outside the span.
     """
-    x, y, s, xp, yp, sp, dut, ddut = _interp(t, table)
+    x, y, s, xp, yp, sp, dut = _interp_fields(t, table)
     era = _era(t, table, dut)
     # M^T = [[1-aX^2, -aXY, -X], [-aXY, 1-aY^2, -Y], [X, Y, 1-a(X^2+Y^2)]]
     # with a = 1/(1 + sqrt(1 - X^2 - Y^2)); Q = M . R3(s)  (IERS Conventions 2010 eq. 5.10)
@@ -275,12 +349,9 @@ def gcrf_to_itrf_nb(t, table, R_out):
     t21 = m21
     t22 = m22
     # W^T = R1(-yp) . R2(-xp) . R3(s')   (ERFA pom00)
-    cx = math.cos(xp)
-    sx = math.sin(xp)
-    cy = math.cos(yp)
-    sy = math.sin(yp)
-    cs = math.cos(sp)
-    ss = math.sin(sp)
+    cx, sx = _cos_sin(xp)
+    cy, sy = _cos_sin(yp)
+    cs, ss = _cos_sin(sp)
     # R2(-xp) . R3(s') = [[cx, 0, sx], [0, 1, 0], [-sx, 0, cx]]
     #                  . [[cs, ss, 0], [-ss, cs, 0], [0, 0, 1]]
     p00 = cx * cs

@@ -238,3 +238,25 @@ def test_epoch_object_equals_tt_tuple() -> None:
     s2, m2 = eph.sun_moon_positions((tt.jd1, tt.jd2), np.array([0.0, 3600.0]))
     np.testing.assert_array_equal(s1, s2)
     np.testing.assert_array_equal(m1, m2)
+
+
+def test_fused_evaluator_equals_per_body_sums() -> None:
+    """sun_moon_nb's evaluator (`_sun_moon_de421`: one set lookup for Sun and EMB, the
+    Chebyshev recurrence shared by the 3 axes) equals the per-body sums of
+    `_chebyshev_body` to float64 rounding.  (The absolute check against jplephem is
+    test_chebyshev_matches_jplephem_same_tdb.)"""
+    epoch = (J2000_JD + 8800.0, 0.25)
+    span = 40 * 86400.0
+    table = eph.build_sun_moon_table(epoch, 0.0, span)
+    ts = np.concatenate([[0.0, span], RNG.uniform(0.0, span, 500)])
+    for t in ts:
+        days = table[eph.H_E0_DAYS] + (t + eph.tdb_minus_tt_nb(t, table)) / 86400.0
+        sun, moon = np.empty(3), np.empty(3)
+        eph._sun_moon_de421(table, days, sun, moon)
+        moon_ref, sun_ref = np.zeros(3), np.zeros(3)
+        eph._chebyshev_body(table, eph.BODY_MOON, days, moon_ref, 1.0)
+        eph._chebyshev_body(table, eph.BODY_SUN, days, sun_ref, 1.0)
+        eph._chebyshev_body(table, eph.BODY_EMB, days, sun_ref, -1.0)
+        sun_ref += table[eph.H_EARTH_SHARE] * moon_ref
+        assert np.max(np.abs(moon - moon_ref)) <= 4e-16 * np.linalg.norm(moon_ref)
+        assert np.max(np.abs(sun - sun_ref)) <= 4e-16 * np.linalg.norm(sun_ref)

@@ -229,9 +229,27 @@ def test_shadow_events_and_restart_consistency():
         sun_moon_nb(e.t_s, table, sun, moon)
         shadow_boundaries_nb(e.state[:3], sun, out)
         assert abs(out[0 if e.kind == "penumbra" else 1]) < 1e-12
-    # same events without restart, to the 1e-6 s requirement
+    # Location accuracy (< 1e-6 s on the dense output): the residual of the boundary
+    # function at the located state, divided by its rate of change there, bounds the
+    # time error.  (Comparing event times of two different runs would measure their
+    # trajectory difference instead, which depends on rtol, not on the root finder.)
+    for run in (res, runs[(1e-13, False)]):
+        for e in run.events:
+            k = 0 if e.kind == "penumbra" else 1
+            g = []
+            for dt in (-0.5, 0.5):
+                st = propagate(EPOCH, GNSS_Y0, GNSS_FORCES, duration=e.t_s + dt,
+                               settings=IntegratorSettings(rtol=1e-13)).state_final
+                sun_moon_nb(e.t_s + dt, table, sun, moon)
+                shadow_boundaries_nb(st[:3], sun, out)
+                g.append(out[k])
+            rate = (g[1] - g[0]) / 1.0
+            sun_moon_nb(e.t_s, table, sun, moon)
+            shadow_boundaries_nb(e.state[:3], sun, out)
+            assert abs(out[k] / rate) < 1e-6, (e.name, out[k], rate)
+    # the two runs see the same crossings (their times differ by the trajectory difference)
     t_no = [e.t_s for e in runs[(1e-13, False)].events]
-    np.testing.assert_allclose(t_no, [e.t_s for e in res.events], rtol=0, atol=1e-6)
+    np.testing.assert_allclose(t_no, [e.t_s for e in res.events], rtol=0, atol=1e-3)
     d_restart = np.linalg.norm(runs[(1e-11, True)].states[:, :3] - res.states[:, :3], axis=1).max()
     d_plain = np.linalg.norm(runs[(1e-11, False)].states[:, :3] - runs[(1e-13, False)].states[:, :3], axis=1).max()
     assert d_restart < 2e-3, d_restart
