@@ -700,3 +700,142 @@ def test_shadow_events_are_labelled_entry_and_exit():
             sun, _ = sun_moon_positions(epoch, np.array([e.t_s + dt]))
             nu.append(illumination_nb(r, sun[0]))
         assert (nu[1] < nu[0]) == label.endswith("_entry"), (label, nu)
+
+
+# --------------------------------------------------------------------------------------
+# throughput machinery, round 2: chunk rows, templates, reused worker store, TOML writer
+# --------------------------------------------------------------------------------------
+def test_chunks_follow_the_number_of_samples(inline_run, tmp_path):
+    """The runner passes the case's number of samples: short cases get chunks of exactly
+    that many rows; more rows than announced can still be appended."""
+    from propagator.study.hdf5_store import StudyStore
+
+    _, _, path = inline_run
+    with h5py.File(path, "r") as f:
+        g = f["cases/leo-b"]  # 7200 s at 120 s: 61 samples (test_inline_run_file_contents)
+        for name in ("state_gcrf", "state_itrf", "elements_osculating", "acceleration/zonal_j2"):
+            assert g[name].chunks[0] == g[name].shape[0] == 61, name
+        assert g["time_s"].chunks == (61,) and g["stm"].chunks == (61, 6, 6)
+    rows = np.arange(150.0).reshape(25, 6)
+    with StudyStore(tmp_path / "s.h5", study_name="x") as store:
+        w = store.begin_case("c", epoch_iso="2024-01-01T00:00:00 TT", epoch_jd1=2460310.5, epoch_jd2=0.5,
+                             epoch_scale="TT", case_config_toml="", force_models=[], expected_rows=10)
+        for a, b in ((0, 4), (4, 17), (17, 25)):
+            w.append(np.arange(a, b) * 1.0, rows[a:b])
+        w.finish({"nfev": 1})
+    with h5py.File(tmp_path / "s.h5", "r") as f:
+        g = f["cases/c"]
+        assert g["state_gcrf"].chunks == (10, 6) and g["time_s"].chunks == (10,)
+        assert np.array_equal(g["state_gcrf"][()], rows) and np.array_equal(g["time_s"][()], np.arange(25.0))
+
+
+def _same_attrs(a: h5py.HLObject, b: h5py.HLObject) -> None:
+    assert sorted(a.attrs) == sorted(b.attrs)
+    for k in a.attrs:
+        ia, ib = a.attrs.get_id(k), b.attrs.get_id(k)
+        assert ia.get_type().equal(ib.get_type()) and ia.shape == ib.shape, k
+        va, vb = np.asarray(a.attrs[k]), np.asarray(b.attrs[k])
+        assert type(a.attrs[k]) is type(b.attrs[k]) and va.dtype == vb.dtype, k
+        assert (va.tolist() == vb.tolist()) if va.dtype.kind == "O" else va.tobytes() == vb.tobytes(), k
+
+
+def test_template_copies_store_what_direct_creation_stores(tmp_path):
+    """Case groups and time series copied from the per-process templates have the
+    attributes (type, shape, value) and the creation properties of objects built one
+    call at a time, also when the values differ from the template's (written in place)
+    and for values that take h5py's general path."""
+    from propagator.study.hdf5_store import (StudyStore, _append_rows, _create_group_with_attrs,
+                                             _set_attrs)
+
+    first = {"status": "running", "n": 3, "x": 1.5, "names": ["a", "b"], "v": [1.0, 2.0], "flag": True, "e": ""}
+    second = {"status": "complete", "n": -7, "x": float("nan"), "names": ["c", "dé"], "v": [3.0, -0.0],
+              "flag": False, "e": "long text " * 50}
+    odd = {"json": {"k": [1, 2]}, "none": None, "s": "t"}
+    series_attrs = {"frame": "GCRF", "columns": ["x", "y", "z"], "units": "m"}
+    rows = np.arange(30.0).reshape(10, 3)
+    with StudyStore(tmp_path / "s.h5", study_name="x") as store:
+        f = store.file
+        for i, values in enumerate((first, second, first, odd)):
+            tpl = _create_group_with_attrs(f, f"tpl{i}", values)
+            ref = f.create_group(f"ref{i}")
+            _set_attrs(ref, values, new=True)
+            _same_attrs(tpl, ref)
+            assert tpl.id.get_create_plist().equal(ref.id.get_create_plist())
+        for i, (hint, attrs) in enumerate(((None, series_attrs), (7, series_attrs), (7, {**series_attrs, "units": "km"}),
+                                           (7, series_attrs))):
+            g = f.create_group(f"series{i}")
+            a = store._create_series_with_attrs(g, "tpl", (3,), attrs, rows_hint=hint)
+            b = store._create_series(g, "ref", (3,), rows_hint=hint)
+            _set_attrs(b, attrs, new=True)
+            _same_attrs(a, b)
+            assert a.chunks == b.chunks == ((4096 if hint is None else hint), 3)
+            for ds in (a, b):
+                _append_rows(ds, rows)
+            assert np.array_equal(a[()], b[()])
+        # overwriting an attribute with a value of another type replaces it (as h5py does)
+        _set_attrs(f["tpl0"], {"x": "now a string", "n": 2.5})
+        f["ref0"].attrs["x"], f["ref0"].attrs["n"] = "now a string", np.float64(2.5)
+        _same_attrs(f["tpl0"], f["ref0"])
+    with h5py.File(tmp_path / "s.h5", "r") as f:  # what is stored (an open id may hold more)
+        for i in range(4):
+            a, b = f[f"series{i}/tpl"], f[f"series{i}/ref"]
+            assert a.id.get_create_plist().equal(b.id.get_create_plist()) and a.id.get_type().equal(b.id.get_type())
+            for attr in ("chunks", "compression", "compression_opts", "shuffle", "maxshape", "fillvalue", "dtype"):
+                assert getattr(a, attr) == getattr(b, attr), attr
+            _same_attrs(a, b)
+            assert np.array_equal(a[()], b[()])
+        for i in range(4):
+            _same_attrs(f[f"tpl{i}"], f[f"ref{i}"])
+            assert f[f"tpl{i}"].id.get_create_plist().equal(f[f"ref{i}"].id.get_create_plist())
+
+
+def test_worker_store_is_reused_and_images_carry_one_case(inline_run, tmp_path):
+    """Short cases of a worker are written into one in-memory file kept per thread;
+    each image holds its own case only, imports to the numbers of an in-process run, and
+    the file is replaced once its image has doubled."""
+    import threading
+
+    from propagator.study import runner
+    from propagator.study.hdf5_store import StudyStore
+
+    study, _, path = inline_run
+    runner._MEMORY_STORES.clear()
+    outs = [runner.run_case(study.case(n).to_toml(), n, None, "tiny", 86400.0, study.case(n))
+            for n in ("leo-a", "leo-b", "leo-a")]
+    held = runner._MEMORY_STORES[threading.get_ident()]
+    for o in outs:
+        with h5py.File(h5py.h5f.open_file_image(o.data)) as f:
+            assert list(f["cases"]) == [o.name]
+        out = tmp_path / f"{o.name}.h5"
+        with StudyStore(out, study_name="tiny") as st:
+            st.import_case_from(o.data, o.name)
+        assert same_case(read_case(out, o.name), read_case(path, o.name))
+    assert list(held[1].file["cases"]) == []  # every case deleted after its image was taken
+    runner._image_taken(2 * held[2] + 1)  # grown to twice its first image: dropped and closed
+    assert threading.get_ident() not in runner._MEMORY_STORES and not held[1].file.id.valid
+
+
+@pytest.mark.parametrize("duration,step", [(7200.0, 120.0), (7200.0, 7.0), (-86400.0, 300.0), (-1000.3, 0.7)])
+def test_segment_grid_count_is_the_number_of_samples(duration, step):
+    from propagator.study.runner import _SegmentGrid, output_times
+
+    s = parse_study(tomllib.loads(TINY.replace("duration_s = 7200.0", f"duration_s = {duration}")
+                                  .replace("step_s = 120.0", f"step_s = {step}")))
+    case = s.case("leo-a")
+    assert _SegmentGrid(case, duration).count() == output_times(case, duration).size
+
+
+def test_toml_values_read_back_bitwise():
+    """The TOML writer's fast paths give text that tomllib (Python standard library)
+    reads back to the very same value."""
+    import struct
+
+    from propagator.study.config import _toml_value
+
+    for v in (0.1, -0.0, 1e300, 5e-324, -2.5e-17, 398600441800000.0, float("inf"), float("-inf")):
+        back = tomllib.loads(f"x = {_toml_value(v)}")["x"]
+        assert struct.pack("<d", back) == struct.pack("<d", v), v
+    assert math.isnan(tomllib.loads(f"x = {_toml_value(float('nan'))}")["x"])
+    for v in (0, -7, 2 ** 40, True, False, "", "a\"b\\c\n\té", np.float64(0.3), np.int64(-4), np.bool_(True)):
+        back = tomllib.loads(f"x = {_toml_value(v)}")["x"]
+        assert back == v and type(back) is type(v.item() if isinstance(v, np.generic) else v), v

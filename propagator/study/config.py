@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import copy
 import difflib
+import functools
 import itertools
 import json
 import math
@@ -1309,11 +1310,23 @@ def case_from_toml(name: str, text: str) -> ResolvedCase:
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
 
 
+@functools.lru_cache(maxsize=1024)
 def _toml_key(k: str) -> str:
     return k if _BARE_KEY.match(k) else json.dumps(k)
 
 
 def _toml_value(v: Any) -> str:
+    t = type(v)  # fast paths for the common exact types (same text as below)
+    if t is float:
+        if v != v or v in (math.inf, -math.inf):
+            return "nan" if v != v else ("inf" if v > 0 else "-inf")
+        return repr(v)
+    if t is str:
+        return json.dumps(v)
+    if t is int:
+        return str(v)
+    if t is bool:
+        return "true" if v else "false"
     if isinstance(v, (bool, np.bool_)):
         return "true" if v else "false"
     if isinstance(v, (int, np.integer)):
@@ -1353,10 +1366,16 @@ def dumps_toml(data: dict[str, Any]) -> str:
 
 
 def _emit_table(lines: list[str], table: dict, path: tuple[str, ...], header: bool, array_item: bool = False) -> None:
-    scalars = [(k, v) for k, v in table.items()
-               if v is not None and not isinstance(v, dict) and not _is_table_array(v)]
-    tables = [(k, v) for k, v in table.items() if isinstance(v, dict)]
-    arrays = [(k, v) for k, v in table.items() if _is_table_array(v)]
+    scalars, tables, arrays = [], [], []
+    for k, v in table.items():  # one pass; the same three groups, in table order
+        if v is None:
+            continue
+        if isinstance(v, dict):
+            tables.append((k, v))
+        elif _is_table_array(v):
+            arrays.append((k, v))
+        else:
+            scalars.append((k, v))
     name = ".".join(_toml_key(p) for p in path)
     if array_item:
         lines.extend(["", f"[[{name}]]"])

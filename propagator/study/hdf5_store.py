@@ -8,7 +8,14 @@ Design (measured pitfalls in ``DESIGN.md``):
 
 * Every time-indexed dataset is chunked along time, resizable (``maxshape`` None on the
   time axis) and compressed with the shuffle filter followed by LZF (default) or gzip.
-  Float state data barely compress without shuffle.
+  Float state data barely compress without shuffle.  A case that announces its number
+  of samples (``begin_case(expected_rows=...)``, the runner does) gets chunks of at most
+  that many rows: compressing a 4096-row chunk that holds 289 rows cost ~0.3 ms per
+  dataset of a 1-day case.
+* Per-case bookkeeping is cheap: case groups and time series are copied whole from
+  per-process in-memory templates (:class:`_Templates`, one ``H5Ocopy`` instead of ~20
+  attribute writes), attributes are written through low-level calls
+  (:func:`_set_attrs`).
 * A case is appended block by block (:meth:`CaseWriter.append`), so a year-long arc at
   10 s spacing never has to be in memory whole.  The chunk cache is sized so that the
   partially filled chunk of every dataset of a case stays in memory between appends.
@@ -179,39 +186,170 @@ def _htypes(dtype: np.dtype) -> tuple[Any, Any]:
     return t
 
 
+def _attr_data(value: Any) -> np.ndarray | None:
+    """The array :func:`_set_attrs` stores for ``value`` (mapped by :func:`_attr_value`),
+    or None for a value only h5py's general path handles."""
+    v = _attr_value(value)
+    if isinstance(v, str):
+        data = np.array(v, dtype=_STR)
+    elif isinstance(v, np.ndarray):
+        data = v
+    else:
+        data = np.asarray(v)
+    if data.dtype.kind not in "fiubO" or (data.dtype.kind == "O" and not h5py.check_string_dtype(data.dtype)):
+        return None
+    return data
+
+
+def _same_data(a: np.ndarray, b: np.ndarray) -> bool:
+    """True if two attribute arrays of the same dtype and shape hold the same values
+    (numbers bitwise, strings by text)."""
+    if a.dtype.kind == "O":
+        return a.tolist() == b.tolist()
+    return a.tobytes() == b.tobytes()
+
+
+def _write_attr(oid: Any, name: bytes, data: np.ndarray, new: bool) -> None:
+    """Create (or overwrite) attribute ``name`` of the object ``oid`` with ``data``.
+
+    An existing attribute of the same HDF5 type and shape is written in place (same
+    stored type, shape and value as deleting and re-creating it, ~30 % cheaper);
+    otherwise it is deleted first, as h5py does."""
+    htype, mtype = _htypes(data.dtype)
+    if not new and h5py.h5a.exists(oid, name):
+        attr = h5py.h5a.open(oid, name)
+        try:
+            if attr.shape == data.shape and attr.get_type().equal(htype):
+                attr.write(data, mtype=mtype)
+                return
+        finally:
+            attr.close()
+        h5py.h5a.delete(oid, name)
+    attr = h5py.h5a.create(oid, name, htype, h5py.h5s.create_simple(data.shape))
+    try:
+        attr.write(data, mtype=mtype)
+    except Exception:
+        attr.close()
+        h5py.h5a.delete(oid, name)
+        raise
+    attr.close()
+
+
 def _set_attrs(obj: h5py.HLObject, values: Mapping[str, Any], *, new: bool = False) -> None:
     """Write several attributes of ``obj`` (values mapped by :func:`_attr_value`).
 
     Same stored types, shapes and values as ``obj.attrs[key] = _attr_value(value)``
-    (``tests/test_hdf5_store.py`` compares the two), through h5py's low-level ``h5a``
+    (``tests/test_runner.py`` compares the two), through h5py's low-level ``h5a``
     calls with cached HDF5 types: ~25 us per attribute instead of ~70 us, which is
     most of the bookkeeping cost of a short case (~50 attributes).  ``new=True``: the
     object was just created, so no attribute needs deleting first.
     """
     oid = obj.id
     for key, value in values.items():
-        v = _attr_value(value)
-        if isinstance(v, str):
-            data = np.array(v, dtype=_STR)
-        elif isinstance(v, np.ndarray):
-            data = v
-        else:
-            data = np.asarray(v)
-        if data.dtype.kind not in "fiubO" or (data.dtype.kind == "O" and not h5py.check_string_dtype(data.dtype)):
-            obj.attrs[key] = v  # anything unusual: h5py's general path
+        data = _attr_data(value)
+        if data is None:
+            obj.attrs[key] = _attr_value(value)  # anything unusual: h5py's general path
             continue
-        name = key.encode("utf-8")
-        if not new and h5py.h5a.exists(oid, name):
-            h5py.h5a.delete(oid, name)
-        htype, mtype = _htypes(data.dtype)
-        attr = h5py.h5a.create(oid, name, htype, h5py.h5s.create_simple(data.shape))
-        try:
-            attr.write(data, mtype=mtype)
-        except Exception:
-            attr.close()
-            h5py.h5a.delete(oid, name)
-            raise
-        attr.close()
+        _write_attr(oid, key.encode("utf-8"), data, new)
+
+
+# --------------------------------------------------------------------------------------
+# Templates: objects copied whole instead of built attribute by attribute
+# --------------------------------------------------------------------------------------
+class _Templates:
+    """Per-process in-memory HDF5 file ("core" driver, no backing store) holding
+    template objects: an empty time-series dataset with its attributes, a case group
+    with its attributes.  A case copies them into the study file with one ``H5Ocopy``
+    each (``h5py.h5o.copy``: the object header, its attributes and creation properties
+    are copied as they are) instead of creating the object and ~20 attributes one by
+    one: measured ~0.12 ms for a case group with 22 attributes and three datasets
+    against ~0.8 ms.  The stored objects are the same as those built directly
+    (``tests/test_runner.py`` compares types, shapes, values and creation property
+    lists)."""
+
+    def __init__(self) -> None:
+        self.pid = os.getpid()
+        self.file = h5py.File(f"longarc-templates-{self.pid}-{id(self)}.h5", "w", driver="core",
+                              backing_store=False)
+        self.series: dict[tuple, bytes] = {}
+        self.groups: dict[tuple, tuple[bytes, dict[str, np.ndarray]]] = {}
+
+    def name(self) -> bytes:
+        return f"t{len(self.series) + len(self.groups)}".encode("ascii")
+
+
+_TEMPLATES: _Templates | None = None
+_TEMPLATE_LOCK = threading.RLock()
+"""Guards the creation of templates (a Dask worker runs cases in several threads)."""
+TEMPLATE_LIMIT = 256
+"""Templates kept per process (each a few kB); beyond it objects are built directly."""
+
+
+def _templates() -> _Templates:
+    global _TEMPLATES
+    with _TEMPLATE_LOCK:
+        if _TEMPLATES is None or _TEMPLATES.pid != os.getpid():  # a forked child makes its own
+            _TEMPLATES = _Templates()
+        return _TEMPLATES
+
+
+_ASCII_LCPL: Any = None
+
+
+def _copy_template(tpl: _Templates, tname: bytes, parent: h5py.Group, name: str) -> bytes:
+    """Copy template ``tname`` to ``parent/name`` (an ASCII name) with the link creation
+    property list h5py uses for an ASCII name (intermediate groups, ASCII character
+    set), made once instead of per call (~25 us).  Returns the encoded name."""
+    global _ASCII_LCPL
+    if _ASCII_LCPL is None:
+        _ASCII_LCPL = parent._e("a", lcpl=True)[1]
+    enc = name.encode("ascii")
+    h5py.h5o.copy(tpl.file.id, tname, parent.id, enc, lcpl=_ASCII_LCPL)
+    return enc
+
+
+def _attr_key(data: Mapping[str, np.ndarray]) -> tuple:
+    """Names, types and shapes of a set of attribute arrays (what a template fixes)."""
+    return tuple((k, v.dtype.str, v.dtype.kind == "O", v.shape) for k, v in data.items())
+
+
+def _create_group_with_attrs(parent: h5py.Group, name: str, values: Mapping[str, Any]) -> h5py.Group:
+    """``parent.create_group(name)`` followed by ``_set_attrs(group, values, new=True)``,
+    through a template group copied whole: the template (made once per set of attribute
+    names, types and shapes) holds the values of the first group made from it; the
+    values that differ are then written in place (same type and shape)."""
+    data = {k: _attr_data(v) for k, v in values.items()}
+    tpl = _templates()
+    if any(v is None for v in data.values()) or not name.isascii():
+        grp = parent.create_group(name)
+        _set_attrs(grp, values, new=True)
+        return grp
+    key = _attr_key(data)  # type: ignore[arg-type]
+    with _TEMPLATE_LOCK:
+        made = tpl.groups.get(key)
+        if made is None:
+            if len(tpl.groups) + len(tpl.series) >= TEMPLATE_LIMIT:
+                made = None
+            else:
+                tname = tpl.name()
+                g = tpl.file.create_group(tname.decode())
+                _set_attrs(g, values, new=True)
+                made = tpl.groups[key] = (tname, dict(data))  # type: ignore[arg-type]
+    if made is None:  # too many kinds of groups: build it directly
+        grp = parent.create_group(name)
+        _set_attrs(grp, values, new=True)
+        return grp
+    tname, tdata = made
+    grp = h5py.Group(h5py.h5g.open(parent.id, _copy_template(tpl, tname, parent, name)))
+    oid = grp.id
+    for k, v in data.items():
+        if not _same_data(v, tdata[k]):  # type: ignore[arg-type]
+            attr = h5py.h5a.open(oid, k.encode("utf-8"))
+            try:
+                attr.write(v, mtype=_htypes(v.dtype)[1])  # type: ignore[union-attr]
+            finally:
+                attr.close()
+    return grp
 
 
 def _read_attrs(obj: h5py.HLObject) -> dict[str, Any]:
@@ -339,6 +477,7 @@ class StudyStore:
         self.flush_interval_s = float(flush_interval_s)
         self._last_flush = time.monotonic()
         self._writers: dict[str, CaseWriter] = {}
+        self._cases_grp: h5py.Group | None = None
         self._series_plists: dict[tuple, tuple[Any, Any]] = {}
         self._old_sigterm: Any = None
         self.in_memory = bool(in_memory)
@@ -408,6 +547,8 @@ class StudyStore:
 
     def close(self) -> None:
         """Flush and close the file (unfinished writers keep status ``"running"``)."""
+        for writer in self._writers.values():
+            writer._datasets.clear()  # open datasets are released before the file closes
         if self._f.id.valid:
             if self.mode != "r":
                 self._f.flush()
@@ -440,7 +581,10 @@ class StudyStore:
 
     # --- queries ------------------------------------------------------------------
     def _cases(self) -> h5py.Group:
-        return self._f[CASES_GROUP]
+        grp = self._cases_grp
+        if grp is None or not grp.id.valid:  # looked up once (~40 us per lookup)
+            grp = self._cases_grp = self._f[CASES_GROUP]
+        return grp
 
     def case_names(self) -> list[str]:
         """Names of all case groups, sorted."""
@@ -473,23 +617,26 @@ class StudyStore:
         self._require_writable()
         if name in self._writers:
             self._writers.pop(name)._closed = True
-        if name in self._cases():
-            del self._cases()[name]
+        cases = self._cases()
+        if cases.id.links.exists(name.encode("utf-8")):
+            del cases[name]
 
     def begin_case(self, name: str, *, epoch_iso: str, epoch_jd1: float, epoch_jd2: float,
                    epoch_scale: str, case_config_toml: str, force_models: list[dict],
-                   extra_attrs: dict | None = None) -> "CaseWriter":
+                   extra_attrs: dict | None = None, expected_rows: int | None = None) -> "CaseWriter":
         """Create the group ``/cases/<name>`` with status ``"running"`` and return its writer.
 
         An existing group of that name (a stale unfinished case, or a case the caller
         chose to recompute) is deleted first.  The file is flushed, so a crash from here
-        on leaves the case visible with status ``"running"``.
+        on leaves the case visible with status ``"running"``.  ``expected_rows``: the
+        number of samples the case will have, when known; the time series then get
+        chunks of at most that many rows (a storage detail: any number of rows can still
+        be appended).
         """
         self._require_writable()
         _check_termination()
         _check_case_name(name)
         self.delete_case(name)
-        grp = self._cases().create_group(name)
         attrs = {
             "status": STATUS_RUNNING,
             "error": "",
@@ -511,9 +658,9 @@ class StudyStore:
             if key in attrs:
                 raise ValueError(f"extra attribute {key!r} clashes with a schema attribute of the case")
             attrs[key] = val
-        _set_attrs(grp, attrs, new=True)
+        grp = _create_group_with_attrs(self._cases(), name, attrs)
         self.flush()
-        writer = CaseWriter(self, grp)
+        writer = CaseWriter(self, grp, expected_rows=expected_rows)
         self._writers[name] = writer
         return writer
 
@@ -600,11 +747,52 @@ class StudyStore:
             return {"compression": "gzip", "compression_opts": self.gzip_level, "shuffle": True}
         return {}
 
-    def _create_series(self, parent: h5py.Group, name: str, row_shape: tuple[int, ...],
-                       dtype: Any = np.float64) -> h5py.Dataset:
+    def _series_rows(self, row_shape: tuple[int, ...], dtype: Any, rows_hint: int | None) -> int:
+        """Rows per chunk: :attr:`chunk_rows` (fewer for wide rows, :func:`_chunk_rows`),
+        and no more than ``rows_hint`` (the number of rows the dataset will get, when
+        known): a 1-day case at 5-minute output has 289 rows, and compressing a 4096-row
+        chunk that holds 289 of them costs ~0.3 ms per dataset for nothing."""
         is_str = h5py.check_string_dtype(np.dtype(dtype)) is not None
         itemsize = 16 if is_str else np.dtype(dtype).itemsize
         rows = _chunk_rows(row_shape, itemsize, self.chunk_rows)
+        if rows_hint is not None and rows_hint >= 1:
+            rows = min(rows, int(rows_hint))
+        return rows
+
+    def _create_series_with_attrs(self, parent: h5py.Group, name: str, row_shape: tuple[int, ...],
+                                  attrs: Mapping[str, Any], rows_hint: int | None = None) -> h5py.Dataset:
+        """:meth:`_create_series` followed by ``_set_attrs(ds, attrs, new=True)``, through
+        a template dataset (see :class:`_Templates`) keyed by shape, chunking, filters and
+        the attribute values: the same stored object, one ``H5Ocopy`` instead of a
+        dataset creation and several attribute writes."""
+        data = {k: _attr_data(v) for k, v in attrs.items()}
+        rows = self._series_rows(row_shape, np.float64, rows_hint)
+        tpl = _templates()
+        if any(v is None for v in data.values()) or not name.isascii():
+            ds = self._create_series(parent, name, row_shape, rows_hint=rows_hint)
+            _set_attrs(ds, attrs, new=True)
+            return ds
+        key = (tuple(row_shape), rows, self.compression, self.gzip_level,
+               tuple((k, v.dtype.str, v.shape, tuple(v.tolist()) if v.dtype.kind == "O" else v.tobytes())
+                     for k, v in data.items()))  # type: ignore[union-attr]
+        with _TEMPLATE_LOCK:
+            tname = tpl.series.get(key)
+            if tname is None and len(tpl.groups) + len(tpl.series) < TEMPLATE_LIMIT:
+                tname = tpl.name()
+                ds = tpl.file.create_dataset(tname.decode(), shape=(0, *row_shape), maxshape=(None, *row_shape),
+                                             chunks=(rows, *row_shape), dtype=np.float64, **self._filters())
+                _set_attrs(ds, attrs, new=True)
+                tpl.series[key] = tname
+        if tname is None:  # too many kinds of series: build it directly
+            ds = self._create_series(parent, name, row_shape, rows_hint=rows_hint)
+            _set_attrs(ds, attrs, new=True)
+            return ds
+        return h5py.Dataset(h5py.h5d.open(parent.id, _copy_template(tpl, tname, parent, name)))
+
+    def _create_series(self, parent: h5py.Group, name: str, row_shape: tuple[int, ...],
+                       dtype: Any = np.float64, *, rows_hint: int | None = None) -> h5py.Dataset:
+        is_str = h5py.check_string_dtype(np.dtype(dtype)) is not None
+        rows = self._series_rows(row_shape, dtype, rows_hint)
         # variable-length strings live in the global heap: filters would only see references
         filters = {} if is_str else self._filters()
         key = (tuple(row_shape), np.dtype(dtype).str, is_str, rows)
@@ -695,12 +883,15 @@ class CaseWriter:
     the same length.
     """
 
-    def __init__(self, store: StudyStore, group: h5py.Group) -> None:
+    def __init__(self, store: StudyStore, group: h5py.Group, *, expected_rows: int | None = None) -> None:
         self._store = store
         self._grp = group
+        self._expected_rows = expected_rows
+        self._datasets: dict[str, tuple[h5py.Dataset, tuple[int, ...]]] = {}
+        """Time series opened during the current :meth:`append` (released at its end)."""
         self.name = group.name.rsplit("/", 1)[-1]
         self.n_samples = 0
-        self._closed = False
+        self._is_closed = False
         self._optional: set[str] | None = None
         self._sens_names: list[str] | None = None
         self._n_events = 0
@@ -709,19 +900,35 @@ class CaseWriter:
     def group(self) -> h5py.Group:
         return self._grp
 
+    @property
+    def _closed(self) -> bool:
+        return self._is_closed
+
+    @_closed.setter
+    def _closed(self, value: bool) -> None:
+        self._is_closed = bool(value)
+        if value:
+            self._datasets.clear()  # release the open datasets (their chunks are written)
+
     def _check_open(self) -> None:
         if self._closed or not self._grp.id.valid:
             raise RuntimeError(f"case {self.name!r}: writer is closed")
 
     def _series(self, path: str, row_shape: tuple[int, ...], attrs: Mapping[str, Any]) -> h5py.Dataset:
+        got = self._datasets.get(path)
+        if got is not None and got[0].id.valid:
+            if got[1] != row_shape:
+                raise ValueError(f"case {self.name!r}: {path} rows have shape {got[1]}, got {row_shape}")
+            return got[0]
         ds = self._grp.get(path)
         if ds is None:
             parent_name, _, leaf = path.rpartition("/")
             parent = self._grp.require_group(parent_name) if parent_name else self._grp
-            ds = self._store._create_series(parent, leaf, row_shape)
-            _set_attrs(ds, attrs, new=True)
+            ds = self._store._create_series_with_attrs(parent, leaf, row_shape, attrs,
+                                                       rows_hint=self._expected_rows)
         elif ds.shape[1:] != row_shape:
             raise ValueError(f"case {self.name!r}: {path} rows have shape {ds.shape[1:]}, got {row_shape}")
+        self._datasets[path] = (ds, tuple(row_shape))
         return ds
 
     def append(self, times: np.ndarray, states_gcrf: np.ndarray, *, states_itrf: np.ndarray | None = None,
@@ -808,6 +1015,11 @@ class CaseWriter:
             _append_rows(self._series(key, row_shape, attrs), arr)
         self.n_samples += m
         _set_attrs(self._grp, {"n_samples": np.int64(self.n_samples)})
+        # release the datasets: an open dataset's chunk cache fills up to
+        # CHUNK_CACHE_BYTES with written chunks before evicting any (measured: +8 MB of
+        # peak RSS over a 120-day LEO arc at 10 s with two series kept open), while a
+        # closed one writes its chunks out and keeps nothing
+        self._datasets.clear()
         self._store._maybe_flush()
 
     def add_events(self, times: np.ndarray, kinds: Sequence[str], states: np.ndarray) -> None:
@@ -921,8 +1133,11 @@ class CaseWriter:
         self._check_open()
         if status not in _STATUSES:
             raise ValueError(f"status must be one of {_STATUSES}, got {status!r}")
-        sg = self._grp.require_group("integrator_statistics")
-        _set_attrs(sg, {str(k): v for k, v in (statistics or {}).items()})
+        stats = {str(k): v for k, v in (statistics or {}).items()}
+        if not self._grp.id.links.exists(b"integrator_statistics"):
+            _create_group_with_attrs(self._grp, "integrator_statistics", stats)
+        else:
+            _set_attrs(self._grp["integrator_statistics"], stats)
         _set_attrs(self._grp, {"n_samples": np.int64(self.n_samples), "finished_utc": _utc_now(),
                                "status": status})
         self._closed = True
