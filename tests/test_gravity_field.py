@@ -383,3 +383,13 @@ def test_zonal_j2_uses_the_rotated_pole():
     acc_z = np.zeros(3)
     zonal_j2.accel(0.0, 7.0e6 * k, np.zeros(3), env_id, p, np.zeros(0), acc_z)
     assert abs(acc_z[1]) > 1e-3 * np.linalg.norm(acc_z)  # about the wrong pole it is not along k
+
+
+def test_prepare_reuses_packed_data_but_never_shares_it():
+    """The packed field data are cached per file/degree/order, but each preparation gets its
+    own array (the kernel writes scratch space into it)."""
+    a = registry.prepare("gravity_field", {"degree": 8}, CASE)
+    b = registry.prepare("gravity_field", {"degree": 8}, CASE)
+    assert np.array_equal(a.d, b.d) and not np.shares_memory(a.d, b.d)
+    c = registry.prepare("gravity_field", {"degree": 8, "order": 3}, CASE)
+    assert c.d.size != a.d.size or not np.array_equal(c.d, a.d)

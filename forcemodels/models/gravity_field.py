@@ -75,16 +75,26 @@ def _load(path_str: str, mtime_ns: int, size: int, degree: int) -> tuple[Gravity
     return field, digest
 
 
+@functools.lru_cache(maxsize=8)
+def _packed(path_str: str, mtime_ns: int, size: int, degree: int, order: int) -> np.ndarray:
+    """Coefficients, recursion factors and scratch packed by ``field_data`` (~0.5 ms of
+    Python loops), computed once per file version, degree and order in a process."""
+    field, _ = _load(path_str, mtime_ns, size, degree)
+    return sh.field_data(field.C, field.S, degree, order)
+
+
 def prepare(params: GravityFieldParams, case: CaseSetup) -> tuple[np.ndarray, np.ndarray, dict]:
     """Read the field file (errors here, at configuration time) and pack p and d."""
     path = Path(params.field_file).expanduser() if params.field_file is not None else DEFAULT_FIELD_FILE
     if not path.is_file():
         raise ValueError(f"gravity_field: field_file {path} does not exist")
     path = path.resolve()
-    field, digest = _load(*_file_key(path), params.degree)
+    key = _file_key(path)
+    field, digest = _load(*key, params.degree)
     order = params.degree if params.order is None else params.order
     p = np.array([field.gm, field.radius, float(params.degree), float(order)])
-    d = sh.field_data(field.C, field.S, params.degree, order)
+    # a copy: the kernel uses part of d as scratch space, so no two propagations may share it
+    d = _packed(*key, params.degree, order).copy()
     meta = {
         "field_name": field.name,
         "field_file": str(path),
