@@ -14,15 +14,22 @@ ENV_SUN = 9
 """env[9:12]: geocentric GCRF position of the Sun [m]."""
 ENV_MOON = 12
 """env[12:15]: geocentric GCRF position of the Moon [m]."""
-ENV_SIZE = 16
+ENV_POLE = 16
+"""env[16:19]: the Earth's pole (ITRF z axis) expressed in GCRF, unit vector [-]; equals
+the third row of R when the full rotation is filled (env[ENV_ROT+6:ENV_ROT+9])."""
+ENV_SIZE = 20
 
 NEED_ROTATION = "rotation"
 NEED_SUN = "sun"
 NEED_MOON = "moon"
-ALL_NEEDS = (NEED_ROTATION, NEED_SUN, NEED_MOON)
+NEED_POLE = "pole"
+"""Only the pole (third row of R): filled from a cheaper pole table when no model needs
+the full rotation (propagator.rotation_table.build_pole_table / pole_nb)."""
+ALL_NEEDS = (NEED_ROTATION, NEED_SUN, NEED_MOON, NEED_POLE)
 
 # Positions in the int64 `flags` array handed to the composed module.
 FLAG_ROTATION = 0
 FLAG_SUN = 1
 FLAG_MOON = 2
-N_FLAGS = 3
+FLAG_POLE = 3
+N_FLAGS = 4

@@ -19,7 +19,7 @@ import numpy as np
 import pydantic
 
 from forcemodels import compose, registry
-from forcemodels.environment import FLAG_SUN, NEED_MOON, NEED_ROTATION, NEED_SUN
+from forcemodels.environment import FLAG_SUN, NEED_MOON, NEED_POLE, NEED_ROTATION, NEED_SUN
 from propagator import table_cache
 from propagator.integrators import stepper as _st
 from propagator.integrators.settings import EventSpec, IntegratorSettings, OutputGrid
@@ -192,7 +192,8 @@ def propagate(epoch: Any, state0: Sequence[float] | np.ndarray,
               output: OutputGrid | np.ndarray | Sequence[float] | None = None,
               stm: bool = False, sensitivities: Sequence[tuple[str, str]] = (),
               events: Sequence[EventSpec] = (), rotation_table: np.ndarray | None = None,
-              ephemeris_table: np.ndarray | None = None) -> PropagationResult:
+              ephemeris_table: np.ndarray | None = None,
+              pole_table: np.ndarray | None = None) -> PropagationResult:
     """Propagate ``state0`` (GCRF [m, m/s] at ``epoch``) to ``t_end`` (or for ``duration``).
 
     Args:
@@ -212,6 +213,10 @@ def propagate(epoch: Any, state0: Sequence[float] | np.ndarray,
             (``propagator.rotation_table.build_rotation_table``,
             ``forcemodels.ephemeris.build_sun_moon_table``) covering the span, e.g. shared
             by several cases; built here when needed and not given.
+        pole_table: precomputed pole table (``propagator.rotation_table.build_pole_table``)
+            for models that need only the pole (zonal_j2).  Without it the pole comes from
+            the full rotation if that is filled anyway or ``rotation_table`` is given
+            (third row of R), else a pole table is built here.
 
     Returns:
         :class:`PropagationResult`.  A run that stops early (max steps, step too small,
@@ -252,10 +257,13 @@ def propagate(epoch: Any, state0: Sequence[float] | np.ndarray,
     eph_table = ephemeris_table
     if NEED_ROTATION in needs and rot_table is None:
         rot_table = table_cache.rotation_table(epoch, lo, hi)
+    pole_tab = pole_table
+    if (NEED_POLE in needs and NEED_ROTATION not in needs and pole_tab is None and rot_table is None):
+        pole_tab = table_cache.pole_table(epoch, lo, hi)
     if (needs & {NEED_SUN, NEED_MOON} or shadow_events) and eph_table is None:
         eph_table = table_cache.sun_moon_table(epoch, lo, hi)
     sens = [(str(m), str(p)) for m, p in sensitivities]
-    forces_tuple = compose.build_forces(prepared, rot_table, eph_table, sens)
+    forces_tuple = compose.build_forces(prepared, rot_table, eph_table, sens, pole_table=pole_tab)
     if shadow_events:
         forces_tuple[1][FLAG_SUN] = 1        # event functions read the Sun from env_fill
 

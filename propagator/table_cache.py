@@ -1,7 +1,7 @@
 """Per-process cache of the environment tables a propagation builds.
 
 Cases of a sweep (and the segments of long arcs that share an epoch) need the same
-rotation and Sun/Moon tables: building them costs ~2.5 ms per 1-day case (IAU
+rotation (or pole) and Sun/Moon tables: building them costs ~2.5 ms per 1-day case (IAU
 2006/2000A ingredients through pyerfa, DE421 Chebyshev sets).  The tables are only read
 by compiled code, so handing out the same array is bitwise equivalent to building a new
 one.  Keyed by table kind, epoch (two-part JD and scale) and span; the least recently
@@ -39,6 +39,13 @@ def rotation_table(epoch: Any, lo: float, hi: float) -> np.ndarray:
     from propagator.rotation_table import build_rotation_table
 
     return _cached("rotation", epoch, lo, hi, lambda: build_rotation_table(epoch, lo, hi))
+
+
+def pole_table(epoch: Any, lo: float, hi: float) -> np.ndarray:
+    """``propagator.rotation_table.build_pole_table(epoch, lo, hi)``, cached."""
+    from propagator.rotation_table import build_pole_table
+
+    return _cached("pole", epoch, lo, hi, lambda: build_pole_table(epoch, lo, hi))
 
 
 def sun_moon_table(epoch: Any, lo: float, hi: float) -> np.ndarray:

@@ -97,6 +97,7 @@ def test_accel_total_is_sum_of_model_accel(mod, tables, state, names):
 @pytest.mark.parametrize("names", [SET_J2, SET_FIELD], ids=["with_j2", "with_field"])
 def test_accel_total_equals_direct_kernel_calls(mod, tables, state, names):
     """Same numbers as calling every registered kernel by hand, env filled independently."""
+    from forcemodels.environment import ENV_POLE
     from forcemodels.ephemeris import sun_moon_positions
     from propagator.rotation_table import rotation_matrices
 
@@ -104,6 +105,7 @@ def test_accel_total_equals_direct_kernel_calls(mod, tables, state, names):
     f, prepared = _forces(names, tables)
     env = np.zeros(f[8].size)
     env[0:9] = rotation_matrices(tables[0], [T])[0].ravel()
+    env[ENV_POLE:ENV_POLE + 3] = env[6:9]  # the pole: third row of R (zonal_j2 reads it)
     sun, moon = sun_moon_positions(EPOCH, np.array([T]))
     env[9:12] = sun[0]
     env[12:15] = moon[0]
@@ -261,8 +263,9 @@ def test_j2_and_gravity_field_conflict(tables):
 
 def test_scratch_is_appended_after_the_documented_members(tables):
     f, _ = _forces(SET_J2, tables)
-    assert len(f) == 12
-    assert f[8].size == 16 and f[11].size == compose.SCRATCH_SIZE
+    from forcemodels.environment import ENV_SIZE
+    assert len(f) == 13                      # ..., scratch (11), pole_table (12, appended)
+    assert f[8].size == ENV_SIZE and f[11].size == compose.SCRATCH_SIZE
     assert f[0].dtype == np.int64 and f[9].dtype == np.int64 and f[10].dtype == np.int64
 
 

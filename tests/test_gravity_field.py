@@ -16,7 +16,7 @@ from scipy.special import lpmv
 
 from forcemodels import registry
 from forcemodels import spherical_harmonics as sh
-from forcemodels.environment import ENV_ROT, ENV_SIZE
+from forcemodels.environment import ENV_POLE, ENV_ROT, ENV_SIZE
 from forcemodels.gfc import DEFAULT_FIELD_FILE, GfcError, read_gfc
 from forcemodels.models import gravity_field, zonal_j2
 from propagator.constants import J2_EARTH
@@ -124,6 +124,7 @@ def rotation(seed=3):
 def env_with(R):
     env = np.zeros(ENV_SIZE)
     env[ENV_ROT:ENV_ROT + 9] = np.asarray(R).ravel()  # row-major, r_itrf = R @ r_gcrf
+    env[ENV_POLE:ENV_POLE + 3] = np.asarray(R)[2]      # the pole, as env_fill copies it
     return env
 
 
@@ -318,7 +319,7 @@ def test_zonal_j2_defaults_and_value():
     pm = registry.prepare("zonal_j2", {}, CASE)
     # J2, GM, R defaults: IERS Conventions 2010, Table 1.1
     np.testing.assert_array_equal(pm.p, [3.986004418e14, 6378136.6, 1.0826359e-3])
-    assert pm.needs == frozenset({"rotation"})
+    assert pm.needs == frozenset({"pole"})  # only the pole (third row of R), not the full rotation
     # at the equator (z = 0) a = -3/2 J2 GM R^2 / r^4 r_hat (common practice: radial,
     # outward-pointing reduction of gravity by 3/2 J2 (R/r)^2 of the point-mass term)
     r = np.array([7.0e6, 0.0, 0.0])

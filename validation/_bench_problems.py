@@ -17,8 +17,9 @@ a numpy function (:func:`make_numpy_rhs`):
 * point mass a = -GM r/|r|^3 and J2 a = -3/2 J2 GM R^2/r^5 [(1 - 5 z^2/r^2) r + 2 z k]
   with the same constants (``propagator.constants``) as ``forcemodels.models``;
 * the J2 pole k (the ITRF z axis in GCRF, third row of the GCRF->ITRF matrix) is
-  tabulated once per problem from the *same* rotation table longarc uses
-  (``propagator.rotation_table.rotation_matrices``) on a 30-s grid and interpolated
+  tabulated once per problem from the *same* pole table longarc uses
+  (``propagator.rotation_table.build_pole_table`` / ``pole_vectors``; no problem here
+  needs the full rotation) on a 30-s grid and interpolated
   linearly in numpy (the tabulation is done before timing; its interpolation cost
   counts against scipy).  The diurnal polar-motion term (amplitude ~1.5e-6 rad) gives
   the largest curvature; linear interpolation errs by ~A (w dt)^2/8 ~ 1e-12 rad,
@@ -57,7 +58,7 @@ from propagator.constants import (AU, GM_EARTH, GM_MOON, GM_SUN, J2_EARTH, R_EAR
 from propagator.elements import kep_to_cart
 from propagator.integrators.settings import EventSpec, IntegratorSettings, OutputGrid
 from propagator.propagate import PropagationResult, propagate
-from propagator.rotation_table import build_rotation_table, rotation_matrices
+from propagator.rotation_table import build_pole_table, pole_vectors
 from propagator.timescales import Epoch
 
 DEG = math.pi / 180.0
@@ -121,6 +122,7 @@ class Environment:
     epoch: Epoch
     rot_table: np.ndarray | None
     eph_table: np.ndarray | None
+    pole_table: np.ndarray | None = None
     pole_t0: float = 0.0
     pole_step: float = POLE_GRID_S
     pole: np.ndarray = field(default_factory=lambda: np.zeros((0, 3)))
@@ -129,18 +131,20 @@ class Environment:
 
 
 def environment(problem: Problem) -> Environment:
-    """Rotation/ephemeris tables for ``problem`` and the tabulated pole (for numpy)."""
+    """Pole/ephemeris tables for ``problem`` and the tabulated pole (for numpy).
+
+    No problem needs the full rotation (zonal_j2 reads only the pole), so ``rot_table`` is
+    None and longarc gets the pole table, as ``propagate`` would build it by itself."""
     epoch = Epoch.from_iso(EPOCH_ISO)
     T = problem.duration_s
-    rot = build_rotation_table(epoch, 0.0, T) if problem.j2 else None
+    pole_tab = build_pole_table(epoch, 0.0, T) if problem.j2 else None
     eph = build_sun_moon_table(epoch, 0.0, T) if (problem.third_bodies or problem.srp) else None
-    env = Environment(epoch, rot, eph)
-    if rot is not None:
+    env = Environment(epoch, None, eph, pole_table=pole_tab)
+    if pole_tab is not None:
         n = int(math.ceil(T / POLE_GRID_S))
         grid = POLE_GRID_S * np.arange(n + 1, dtype=np.float64)
-        grid[-1] = T                         # the rotation table spans [0, T]
-        R = rotation_matrices(rot, grid)
-        env.pole = np.ascontiguousarray(R[:, 2, :])
+        grid[-1] = T                         # the pole table spans [0, T]
+        env.pole = np.ascontiguousarray(pole_vectors(pole_tab, grid))
         env.pole_diff = np.ascontiguousarray(np.diff(env.pole, axis=0) / np.diff(grid)[:, None])
         env.pole_grid = grid
     return env
@@ -153,9 +157,10 @@ def _pole_at(env: Environment, t: float) -> np.ndarray:
 
 
 def pole_interpolation_error(env: Environment, duration_s: float, n: int = 2000) -> float:
-    """Largest angle [rad] between the linearly interpolated and the exact pole."""
+    """Largest angle [rad] between the linearly interpolated pole and longarc's (the pole
+    table, itself within 5e-14 rad of pyerfa's full rotation: tests/test_propagate.py)."""
     ts = np.random.default_rng(7).uniform(0.0, duration_s, n)
-    exact = rotation_matrices(env.rot_table, ts)[:, 2, :]
+    exact = pole_vectors(env.pole_table, ts)
     approx = np.array([_pole_at(env, t) for t in ts])
     c = np.cross(exact, approx)
     return float(np.max(np.linalg.norm(c, axis=1) / np.linalg.norm(approx, axis=1)))
@@ -263,7 +268,8 @@ def run_longarc(problem: Problem, env: Environment, rtol: float, method: str = "
 
     def go() -> PropagationResult:
         return propagate(env.epoch, y0, problem.forces, duration=T, settings=st, output=out,
-                         rotation_table=env.rot_table, ephemeris_table=env.eph_table)
+                         rotation_table=env.rot_table, ephemeris_table=env.eph_table,
+                         pole_table=env.pole_table)
 
     dt, res = best_of(repeats, go)
     if not res.ok or res.t_final != T:
@@ -282,7 +288,8 @@ def shadow_boundaries(problem: Problem, env: Environment, rtol: float = 1e-14) -
                     settings=IntegratorSettings(rtol=rtol, atol_pos_m=ap, atol_vel_m_s=av),
                     output=OutputGrid(times_s=np.array([problem.duration_s])),
                     events=[EventSpec("penumbra"), EventSpec("umbra")],
-                    rotation_table=env.rot_table, ephemeris_table=env.eph_table)
+                    rotation_table=env.rot_table, ephemeris_table=env.eph_table,
+                    pole_table=env.pole_table)
     t = np.array(sorted(e.t_s for e in res.events))
     return t[(t > 0.0) & (t < problem.duration_s)]
 

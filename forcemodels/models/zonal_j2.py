@@ -9,7 +9,8 @@ numbers from memory), has the gradient
 where k is the unit vector of the Earth's pole and z = k . r (component form: M&G
 eq. 3.33 for n = 2, m = 0, or Vallado, Fundamentals of Astrodynamics and Applications,
 4th ed., 2013, sec. 8.6.1; from memory).  The pole is the ITRF z axis expressed in
-GCRF, i.e. the third row of R (r_itrf = R r_gcrf, env[ENV_ROT:ENV_ROT+9] row-major):
+GCRF, i.e. the third row of R (r_itrf = R r_gcrf), read from env[ENV_POLE:ENV_POLE+3]
+(filled from the pole table, or copied from R when the full rotation is filled):
 the true pole, not the J2000 one (they differ by ~0.35 deg in the 2020s).
 
 Partials (differentiating the expression above):
@@ -31,7 +32,7 @@ import numpy as np
 import pydantic
 from numba import njit
 
-from forcemodels.environment import ENV_ROT, NEED_ROTATION
+from forcemodels.environment import ENV_POLE, NEED_POLE
 from forcemodels.registry import CaseSetup, ForceModel, register
 from propagator.constants import GM_EARTH, J2_EARTH, R_EARTH_EQ
 
@@ -47,10 +48,10 @@ class ZonalJ2Params(pydantic.BaseModel):
 
 @njit
 def accel(t, r, v, env, p, d, acc):
-    """Add the J2 acceleration [m/s^2]; p = [GM [m^3/s^2], R [m], J2 [-]]; pole = row 3 of R."""
-    kx = env[ENV_ROT + 6]
-    ky = env[ENV_ROT + 7]
-    kz = env[ENV_ROT + 8]
+    """Add the J2 acceleration [m/s^2]; p = [GM [m^3/s^2], R [m], J2 [-]]; pole = env[ENV_POLE:+3]."""
+    kx = env[ENV_POLE]
+    ky = env[ENV_POLE + 1]
+    kz = env[ENV_POLE + 2]
     r2 = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
     rn = math.sqrt(r2)
     z = kx * r[0] + ky * r[1] + kz * r[2]
@@ -65,9 +66,9 @@ def accel(t, r, v, env, p, d, acc):
 @njit
 def partials(t, r, v, env, p, d, dadr, dadv):
     """Add d a/d r (module docstring) [1/s^2]; d a/d v = 0."""
-    k0 = env[ENV_ROT + 6]
-    k1 = env[ENV_ROT + 7]
-    k2 = env[ENV_ROT + 8]
+    k0 = env[ENV_POLE]
+    k1 = env[ENV_POLE + 1]
+    k2 = env[ENV_POLE + 2]
     r2 = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
     rn = math.sqrt(r2)
     z = k0 * r[0] + k1 * r[1] + k2 * r[2]
@@ -89,7 +90,7 @@ def partials(t, r, v, env, p, d, dadr, dadv):
 def prepare(params: ZonalJ2Params, case: CaseSetup) -> tuple[np.ndarray, np.ndarray, dict]:
     p = np.array([params.gm_m3_s2, params.radius_m, params.j2])
     meta = {"j2": params.j2, "gm_m3_s2": params.gm_m3_s2, "radius_m": params.radius_m,
-            "pole": "true pole (ITRF z axis from the rotation table)"}
+            "pole": "true pole (ITRF z axis in GCRF, from the pole or rotation table)"}
     return p, np.zeros(0), meta
 
 
@@ -99,7 +100,7 @@ register(ForceModel(
     params=ZonalJ2Params,
     accel=accel,
     prepare=prepare,
-    needs=frozenset({NEED_ROTATION}),
+    needs=frozenset({NEED_POLE}),
     partials=partials,
     estimable={"j2": 2},
     module=__name__,
