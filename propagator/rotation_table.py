@@ -116,6 +116,41 @@ _ERA_FRAC_RATE = ERA_RATE_EXCESS_TURNS_PER_UT1_DAY
 _INV_DAY = 1.0 / SECONDS_PER_DAY  # multiplication instead of division (rounding-level change)
 
 
+def _node_grid(epoch: Epoch, t_start: float, t_end: float, step: float, eop_policy: str):
+    """Checked span and the padded node grid shared by the table builders: nodes run from
+    ``t_start - 3 step`` to beyond ``t_end + 2 step`` (a centred 6-point stencil for every
+    t in the span).  Returns (epoch in TT, first node t0, node count, node TT dates)."""
+    if not (math.isfinite(t_start) and math.isfinite(t_end) and t_end >= t_start):
+        raise ValueError(f"need finite t_start <= t_end, got {t_start!r}, {t_end!r}")
+    if not (math.isfinite(step) and step > 0.0):
+        raise ValueError(f"step must be a positive number of seconds, got {step!r}")
+    tt = epoch.to("TT", eop_policy=eop_policy)
+    n_span = int(math.ceil((t_end - t_start) / step))
+    n_nodes = n_span + 1 + 2 * _PAD
+    t0 = t_start - _PAD * step
+    t_nodes = t0 + step * np.arange(n_nodes, dtype=np.float64)
+    jd1, jd2 = jd_add_seconds(np.full(n_nodes, tt.jd1), np.full(n_nodes, tt.jd2), t_nodes)
+    return tt, t0, n_nodes, jd1, jd2
+
+
+def _new_table(tt: Epoch, t0: float, step: float, n_nodes: int, n_fields: int,
+               t_start: float, t_end: float) -> np.ndarray:
+    """Zeroed flat table with the common header filled (layout in the module docstring)."""
+    table = np.zeros(HEADER_LEN + n_nodes * n_fields, dtype=np.float64)
+    table[H_VERSION] = FORMAT_VERSION
+    table[H_HEADER_LEN] = HEADER_LEN
+    table[H_T0] = t0
+    table[H_STEP] = step
+    table[H_N_NODES] = n_nodes
+    table[H_N_FIELDS] = n_fields
+    table[H_N_POINTS] = N_POINTS
+    table[H_TT_DAYS] = tt.jd1 - J2000_JD
+    table[H_TT_FRAC] = tt.jd2
+    table[H_T_START] = t_start
+    table[H_T_END] = t_end
+    return table
+
+
 def build_rotation_table(
     epoch: Epoch,
     t_start: float,
@@ -131,36 +166,13 @@ def build_rotation_table(
     span has a centred 6-point stencil.  ``eop_policy`` as in `propagator.eop.eop_at`.
     Returns the flat float64 table described in the module docstring.
     """
-    t_start = float(t_start)
-    t_end = float(t_end)
-    step = float(step)
-    if not (math.isfinite(t_start) and math.isfinite(t_end) and t_end >= t_start):
-        raise ValueError(f"need finite t_start <= t_end, got {t_start!r}, {t_end!r}")
-    if not (math.isfinite(step) and step > 0.0):
-        raise ValueError(f"step must be a positive number of seconds, got {step!r}")
-    tt = epoch.to("TT", eop_policy=eop_policy)
-    n_span = int(math.ceil((t_end - t_start) / step))
-    n_nodes = n_span + 1 + 2 * _PAD
-    t0 = t_start - _PAD * step
-    t_nodes = t0 + step * np.arange(n_nodes, dtype=np.float64)
-    jd1, jd2 = jd_add_seconds(np.full(n_nodes, tt.jd1), np.full(n_nodes, tt.jd2), t_nodes)
+    tt, t0, n_nodes, jd1, jd2 = _node_grid(epoch, float(t_start), float(t_end), float(step), eop_policy)
     p = rotation_parts(jd1, jd2, eop_policy=eop_policy, cip_offsets=cip_offsets)
     p0 = rotation_parts(tt.jd1, tt.jd2, eop_policy=eop_policy, cip_offsets=cip_offsets)
 
-    table = np.zeros(HEADER_LEN + n_nodes * N_FIELDS, dtype=np.float64)
-    table[H_VERSION] = FORMAT_VERSION
-    table[H_HEADER_LEN] = HEADER_LEN
-    table[H_T0] = t0
-    table[H_STEP] = step
-    table[H_N_NODES] = n_nodes
-    table[H_N_FIELDS] = N_FIELDS
-    table[H_N_POINTS] = N_POINTS
-    table[H_TT_DAYS] = tt.jd1 - J2000_JD
-    table[H_TT_FRAC] = tt.jd2
+    table = _new_table(tt, t0, step, n_nodes, N_FIELDS, t_start, t_end)
     table[H_UT1_MINUS_TT0] = p0["ut1_minus_tt"][0]
     table[H_CIP_OFFSETS] = 1.0 if cip_offsets else 0.0
-    table[H_T_START] = t_start
-    table[H_T_END] = t_end
     rows = table[HEADER_LEN:].reshape(n_nodes, N_FIELDS)
     rows[:, F_X] = p["x"]
     rows[:, F_Y] = p["y"]
@@ -188,34 +200,11 @@ def build_pole_table(
     (``H_N_FIELDS`` = 3, ``H_KIND`` = 1); evaluated by `pole_nb`.  Cheap to interpolate:
     a force model that needs only the pole (zonal J2) avoids assembling the full matrix.
     """
-    t_start = float(t_start)
-    t_end = float(t_end)
-    step = float(step)
-    if not (math.isfinite(t_start) and math.isfinite(t_end) and t_end >= t_start):
-        raise ValueError(f"need finite t_start <= t_end, got {t_start!r}, {t_end!r}")
-    if not (math.isfinite(step) and step > 0.0):
-        raise ValueError(f"step must be a positive number of seconds, got {step!r}")
-    tt = epoch.to("TT", eop_policy=eop_policy)
-    n_span = int(math.ceil((t_end - t_start) / step))
-    n_nodes = n_span + 1 + 2 * _PAD
-    t0 = t_start - _PAD * step
-    t_nodes = t0 + step * np.arange(n_nodes, dtype=np.float64)
-    jd1, jd2 = jd_add_seconds(np.full(n_nodes, tt.jd1), np.full(n_nodes, tt.jd2), t_nodes)
+    tt, t0, n_nodes, jd1, jd2 = _node_grid(epoch, float(t_start), float(t_end), float(step), eop_policy)
     R, _ = gcrf_to_itrf_matrices(jd1, jd2, eop_policy=eop_policy, cip_offsets=True)
 
-    table = np.zeros(HEADER_LEN + n_nodes * N_POLE_FIELDS, dtype=np.float64)
-    table[H_VERSION] = FORMAT_VERSION
-    table[H_HEADER_LEN] = HEADER_LEN
-    table[H_T0] = t0
-    table[H_STEP] = step
-    table[H_N_NODES] = n_nodes
-    table[H_N_FIELDS] = N_POLE_FIELDS
-    table[H_N_POINTS] = N_POINTS
-    table[H_TT_DAYS] = tt.jd1 - J2000_JD
-    table[H_TT_FRAC] = tt.jd2
+    table = _new_table(tt, t0, step, n_nodes, N_POLE_FIELDS, t_start, t_end)
     table[H_CIP_OFFSETS] = 1.0
-    table[H_T_START] = t_start
-    table[H_T_END] = t_end
     table[H_KIND] = KIND_POLE
     rows = table[HEADER_LEN:].reshape(n_nodes, N_POLE_FIELDS)
     rows[:, P_X] = R[:, 2, 0]
@@ -332,13 +321,10 @@ def _cos_sin(a):
     return math.cos(a), math.sin(a)
 
 
-@njit
-def _interp_fields(t, table):
-    """Interpolated (X, Y, s, xp, yp, s', UT1-TT) at t: the same 6-point Lagrange
-    interpolant as `_interp`, with the six basis weights formed once from prefix and
+@njit(inline="always")
+def _lagrange6_weights(u):
+    """The six 6-point Lagrange basis weights at u (nodes 0..5), formed from prefix and
     suffix products of (u - m) and the constant denominators (no divisions)."""
-    hdr, j0, u = _stencil(t, table)
-    nf = int(table[H_N_FIELDS])
     d0 = u
     d1 = u - 1.0
     d2 = u - 2.0
@@ -351,12 +337,18 @@ def _interp_fields(t, table):
     s3 = d4 * d5
     s2 = d3 * s3
     s1 = d2 * s2
-    w0 = (d1 * s1) * _INV_DEN0
-    w1 = (d0 * s1) * _INV_DEN1
-    w2 = (p2 * s2) * _INV_DEN2
-    w3 = (p3 * s3) * _INV_DEN3
-    w4 = (p4 * d5) * _INV_DEN4
-    w5 = (p4 * d4) * _INV_DEN5
+    return ((d1 * s1) * _INV_DEN0, (d0 * s1) * _INV_DEN1, (p2 * s2) * _INV_DEN2,
+            (p3 * s3) * _INV_DEN3, (p4 * d5) * _INV_DEN4, (p4 * d4) * _INV_DEN5)
+
+
+@njit
+def _interp_fields(t, table):
+    """Interpolated (X, Y, s, xp, yp, s', UT1-TT) at t: the same 6-point Lagrange
+    interpolant as `_interp`, with the six basis weights formed once
+    (`_lagrange6_weights`)."""
+    hdr, j0, u = _stencil(t, table)
+    nf = int(table[H_N_FIELDS])
+    w0, w1, w2, w3, w4, w5 = _lagrange6_weights(u)
     b0 = hdr + j0 * nf
     b1 = b0 + nf
     b2 = b1 + nf
@@ -457,26 +449,9 @@ def gcrf_to_itrf_nb(t, table, R_out):
 def pole_nb(t, table, out):
     """Write the pole (ITRF z axis in GCRF, unit vector) at t [s TT since epoch] to
     out[0:3], from a `build_pole_table` table: 6-point Lagrange interpolation (the same
-    weights as `_interp_fields`).  Raises ValueError outside the span; no allocation."""
+    weights as `_interp_fields`, `_lagrange6_weights`).  Raises ValueError outside the span; no allocation."""
     hdr, j0, u = _stencil(t, table)
-    d0 = u
-    d1 = u - 1.0
-    d2 = u - 2.0
-    d3 = u - 3.0
-    d4 = u - 4.0
-    d5 = u - 5.0
-    p2 = d0 * d1
-    p3 = p2 * d2
-    p4 = p3 * d3
-    s3 = d4 * d5
-    s2 = d3 * s3
-    s1 = d2 * s2
-    w0 = (d1 * s1) * _INV_DEN0
-    w1 = (d0 * s1) * _INV_DEN1
-    w2 = (p2 * s2) * _INV_DEN2
-    w3 = (p3 * s3) * _INV_DEN3
-    w4 = (p4 * d5) * _INV_DEN4
-    w5 = (p4 * d4) * _INV_DEN5
+    w0, w1, w2, w3, w4, w5 = _lagrange6_weights(u)
     b0 = hdr + j0 * N_POLE_FIELDS
     b1 = b0 + N_POLE_FIELDS
     b2 = b1 + N_POLE_FIELDS
