@@ -37,10 +37,24 @@ Outside DE421's span the table falls back to the low-precision analytic series o
 :mod:`forcemodels.analytic_ephemeris`, with a logged warning and ``source`` = analytic in
 the header; beyond the analytic series' validity the table builder raises ValueError.
 
+Resampled series.  The force models evaluate Sun and Moon at every right-hand side
+evaluation, where the DE421 path above (three bodies, two set lookups, TDB - TT) costs
+~140 ns.  :func:`build_sun_moon_table` therefore re-fits the geocentric positions it
+produces (TDB - TT and the Sun = Sun - EMB + Moon/(1 + EMRAT) combination included) as
+Chebyshev series in TT seconds since the epoch on equal segments of at most
+``RESAMPLE_SEGMENT_S`` = 1 day with ``RESAMPLE_NCOEF`` = 9 coefficients per component
+(nodes and transform as in Press et al., Numerical Recipes 3rd ed. sec. 5.8), evaluated
+by :func:`resampled_sun_moon_nb` in ~29 ns (one lookup, one shared recurrence).
+Measured deviation from the source evaluator over 30 days (20,000 random times): Moon
+2.8e-6 m, Sun 3.4e-4 m (the round-off of sums of ~1.5e11 m; 1 ulp = 3e-5 m); the build
+measures it between the nodes and stores it (H_RS_MAXDEV).  Both are far below DE421's
+own accuracy and change third-body accelerations by < 1e-17 m/s^2.
+
 Table layout (flat float64; header slots are the ``H_*`` constants below)::
 
-    [header (HEADER_SIZE)] [Sun sets] [EMB sets] [Moon sets] [TDB-TT sets]
+    [header (HEADER_SIZE)] [Sun sets] [EMB sets] [Moon sets] [TDB-TT sets] [resampled]
 
+the resampled block as (n_seg, 6, n_coef): Sun x, y, z, Moon x, y, z per segment [m];
 each body's sets as (n_sets, 3, n_coef) C-order, coefficients in metres; the TDB-TT sets
 as (n_sets, n_coef) in seconds, argument TT days.
 """
@@ -63,7 +77,7 @@ from propagator.constants import DAYS_PER_JULIAN_CENTURY, J2000_JD, SECONDS_PER_
 log = logging.getLogger(__name__)
 
 # ---- table header layout -----------------------------------------------------------
-TABLE_MAGIC = 421.20250102
+TABLE_MAGIC = 421.20261202
 """Value of table[H_MAGIC]: identifies a Sun/Moon table (format version in the decimals)."""
 H_MAGIC = 0
 H_SOURCE = 1          # SOURCE_DE421 or SOURCE_ANALYTIC
@@ -77,7 +91,14 @@ H_T_MAX = 8
 H_START_JD = 9        # TDB JD of the first stored set (information)
 H_BODY = 10           # per series b (BODY_SUN, BODY_EMB, BODY_MOON, SERIES_TDB_TT): 4 slots at H_BODY + 4 b
 B_NSETS, B_NCOEF, B_SPAN_DAYS, B_OFFSET = 0, 1, 2, 3
-HEADER_SIZE = H_BODY + 16
+H_RS_NSEG = H_BODY + 16   # resampled geocentric series: number of segments (0: none)
+H_RS_T0 = H_BODY + 17     # start of the first segment, seconds since epoch (TT)
+H_RS_SEG_S = H_BODY + 18  # segment length [s]
+H_RS_INV_SEG = H_BODY + 19  # 1 / segment length [1/s]
+H_RS_NCOEF = H_BODY + 20  # Chebyshev coefficients per component
+H_RS_OFFSET = H_BODY + 21  # index of the first coefficient in the table
+H_RS_MAXDEV = H_BODY + 22  # largest deviation from the source evaluator found at build [m]
+HEADER_SIZE = H_BODY + 24
 
 SOURCE_DE421 = 0.0
 SOURCE_ANALYTIC = 1.0
@@ -172,14 +193,25 @@ def build_sun_moon_table(epoch: Any, t_start: float, t_end: float,
                          margin_s: float = DEFAULT_MARGIN_S) -> np.ndarray:
     """Flat float64 Sun/Moon table covering [t_start, t_end] (+/- margin) around ``epoch``.
 
+    The source table (:func:`build_source_table`: DE421 sets or the analytic series)
+    followed by the resampled geocentric series that :func:`sun_moon_nb` evaluates
+    (:func:`_append_resampled`, module docstring "Resampled series").
+    """
+    return _append_resampled(build_source_table(epoch, t_start, t_end, margin_s))
+
+
+def build_source_table(epoch: Any, t_start: float, t_end: float,
+                       margin_s: float = DEFAULT_MARGIN_S) -> np.ndarray:
+    """Flat float64 Sun/Moon source table covering [t_start, t_end] (+/- margin).
+
     Args:
         epoch: case epoch, :class:`propagator.timescales.Epoch` or TT tuple (jd1, jd2).
         t_start, t_end: span in seconds since the epoch (TT), either order.
         margin_s: extra coverage on each side [s].
 
     Returns:
-        The table read by :func:`sun_moon_nb` (layout in the module docstring).  Holds the
-        DE421 Chebyshev sets of Sun, EMB and Moon covering the span, converted to metres;
+        The source table (layout in the module docstring, no resampled series: evaluated
+        by :func:`source_sun_moon_nb`).  Holds the DE421 Chebyshev sets of Sun, EMB and Moon covering the span, converted to metres;
         if the span leaves DE421 the table selects the analytic series (a warning is
         logged).  Raises ValueError beyond the analytic series' validity.
     """
@@ -380,16 +412,13 @@ def _sun_moon_de421(table, days, sun_out, moon_out):
 
 
 @njit
-def sun_moon_nb(t, table, sun_out, moon_out):
-    """Geocentric GCRF positions of the Sun and Moon [m] at t [s since epoch, TT].
+def source_sun_moon_nb(t, table, sun_out, moon_out):
+    """Geocentric GCRF Sun and Moon [m] at t [s since epoch, TT] from the source series.
 
     DE421 tables: Chebyshev evaluation (argument TDB; TDB - TT tabulated from erfa.dtdb,
     evaluated once), Sun_geo = Sun - EMB + Moon_geo/(1 + EMRAT) (`_sun_moon_de421`).
-    Analytic tables: Montenbruck & Gill (2000) sec. 3.3.2.  Raises ValueError if t is
-    outside the table's span.
+    Analytic tables: Montenbruck & Gill (2000) sec. 3.3.2 (may allocate).  No span check.
     """
-    if t < table[H_T_MIN] or t > table[H_T_MAX]:
-        raise ValueError("sun_moon_nb: time outside the span of the Sun/Moon table")
     if table[H_SOURCE] != SOURCE_DE421:
         T = table[H_T0_CENT] + t / _SECONDS_PER_CENTURY
         sun_position_analytic_nb(T, sun_out)
@@ -397,6 +426,132 @@ def sun_moon_nb(t, table, sun_out, moon_out):
         return
     days = table[H_E0_DAYS] + (t + tdb_minus_tt_nb(t, table)) * _INV_DAY
     _sun_moon_de421(table, days, sun_out, moon_out)
+
+
+@njit(inline="always")
+def resampled_sun_moon_nb(t, table, sun_out, moon_out):
+    """Geocentric GCRF Sun and Moon [m] at t [s since epoch, TT] from the resampled series.
+
+    One segment lookup and one Chebyshev argument for both bodies; the six sums share
+    the recurrence T_j = 2x T_(j-1) - T_(j-2) (module docstring "Resampled series").
+    Needs table[H_RS_NSEG] > 0; does not allocate.  Raises ValueError outside the span.
+    """
+    if t < table[H_T_MIN] or t > table[H_T_MAX]:
+        raise ValueError("sun_moon_nb: time outside the span of the Sun/Moon table")
+    n_seg = int(table[H_RS_NSEG])
+    n = int(table[H_RS_NCOEF])
+    u = (t - table[H_RS_T0]) * table[H_RS_INV_SEG]
+    k = int(u)
+    if k < 0:
+        k = 0
+    elif k >= n_seg:
+        k = n_seg - 1
+    x = 2.0 * (u - k) - 1.0
+    c0 = int(table[H_RS_OFFSET]) + k * 6 * n
+    two_x = 2.0 * x
+    a0 = table[c0] + table[c0 + 1] * x
+    a1 = table[c0 + n] + table[c0 + n + 1] * x
+    a2 = table[c0 + 2 * n] + table[c0 + 2 * n + 1] * x
+    a3 = table[c0 + 3 * n] + table[c0 + 3 * n + 1] * x
+    a4 = table[c0 + 4 * n] + table[c0 + 4 * n + 1] * x
+    a5 = table[c0 + 5 * n] + table[c0 + 5 * n + 1] * x
+    t_prev = 1.0
+    t_cur = x
+    for j in range(2, n):
+        t_next = two_x * t_cur - t_prev
+        t_prev = t_cur
+        t_cur = t_next
+        a0 += table[c0 + j] * t_next
+        a1 += table[c0 + n + j] * t_next
+        a2 += table[c0 + 2 * n + j] * t_next
+        a3 += table[c0 + 3 * n + j] * t_next
+        a4 += table[c0 + 4 * n + j] * t_next
+        a5 += table[c0 + 5 * n + j] * t_next
+    sun_out[0] = a0
+    sun_out[1] = a1
+    sun_out[2] = a2
+    moon_out[0] = a3
+    moon_out[1] = a4
+    moon_out[2] = a5
+
+
+@njit
+def sun_moon_nb(t, table, sun_out, moon_out):
+    """Geocentric GCRF positions of the Sun and Moon [m] at t [s since epoch, TT].
+
+    Tables from :func:`build_sun_moon_table` carry the resampled series
+    (:func:`resampled_sun_moon_nb`); source-only tables are evaluated directly
+    (:func:`source_sun_moon_nb`).  Raises ValueError if t is outside the table's span.
+    """
+    if t < table[H_T_MIN] or t > table[H_T_MAX]:
+        raise ValueError("sun_moon_nb: time outside the span of the Sun/Moon table")
+    if table[H_RS_NSEG] > 0.0:
+        resampled_sun_moon_nb(t, table, sun_out, moon_out)
+    else:
+        source_sun_moon_nb(t, table, sun_out, moon_out)
+
+
+@njit
+def _source_sun_moon_many(ts, table, sun, moon):
+    for i in range(ts.shape[0]):
+        source_sun_moon_nb(ts[i], table, sun[i], moon[i])
+
+
+RESAMPLE_SEGMENT_S = SECONDS_PER_DAY
+"""Longest segment of the resampled series [s] (our choice; errors in the module docstring)."""
+RESAMPLE_NCOEF = 9
+"""Chebyshev coefficients per component and segment of the resampled series (our choice)."""
+
+
+def _chebyshev_fit(values: np.ndarray) -> np.ndarray:
+    """Coefficients c_j from values at the n Chebyshev nodes x_i = cos(pi (i + 1/2) / n)
+    (discrete Chebyshev transform, e.g. Press et al., Numerical Recipes 3rd ed. sec. 5.8):
+    c_j = (2 - [j == 0]) / n sum_i f(x_i) T_j(x_i).  values: (..., n)."""
+    n = values.shape[-1]
+    Tj = np.cos(np.outer(np.arange(n), np.pi * (np.arange(n) + 0.5) / n))
+    coef = values @ Tj.T * (2.0 / n)
+    coef[..., 0] *= 0.5
+    return coef
+
+
+def _append_resampled(source: np.ndarray, segment_s: float = RESAMPLE_SEGMENT_S,
+                      n_coef: int = RESAMPLE_NCOEF) -> np.ndarray:
+    """``source`` + geocentric Sun and Moon re-fitted as Chebyshev series in TT seconds.
+
+    The span [H_T_MIN, H_T_MAX] is cut into equal segments of at most ``segment_s``; on
+    each, both bodies are evaluated with :func:`source_sun_moon_nb` at the n_coef
+    Chebyshev nodes and transformed (:func:`_chebyshev_fit`).  The deviation from the
+    source is measured at the segment mid-points and quarter points (between the nodes)
+    and stored in the header (H_RS_MAXDEV, metres)."""
+    table = source.copy()
+    t_lo, t_hi = float(table[H_T_MIN]), float(table[H_T_MAX])
+    n_seg = max(1, int(math.ceil((t_hi - t_lo) / segment_s - 1e-9)))
+    seg = (t_hi - t_lo) / n_seg
+    x = np.cos(np.pi * (np.arange(n_coef) + 0.5) / n_coef)
+    ts = t_lo + seg * (np.arange(n_seg)[:, None] + 0.5 * (x[None, :] + 1.0))
+    ts = np.clip(ts, t_lo, t_hi).ravel()
+    sun = np.empty((ts.size, 3))
+    moon = np.empty((ts.size, 3))
+    _source_sun_moon_many(ts, table, sun, moon)
+    vals = np.concatenate([sun.reshape(n_seg, n_coef, 3), moon.reshape(n_seg, n_coef, 3)], axis=2)
+    coef = _chebyshev_fit(np.ascontiguousarray(vals.transpose(0, 2, 1)))     # (n_seg, 6, n_coef)
+    table[H_RS_NSEG] = n_seg
+    table[H_RS_T0] = t_lo
+    table[H_RS_SEG_S] = seg
+    table[H_RS_INV_SEG] = 1.0 / seg
+    table[H_RS_NCOEF] = n_coef
+    table[H_RS_OFFSET] = table.size
+    table = np.concatenate([table, coef.ravel()])
+    # deviation from the source between the nodes
+    tc = t_lo + seg * (np.arange(n_seg)[:, None] + np.array([0.25, 0.5, 0.75])[None, :])
+    tc = tc.ravel()
+    s_src, m_src = np.empty((tc.size, 3)), np.empty((tc.size, 3))
+    s_rs, m_rs = np.empty((tc.size, 3)), np.empty((tc.size, 3))
+    _source_sun_moon_many(tc, table, s_src, m_src)
+    _sun_moon_many(tc, table, s_rs, m_rs)
+    table[H_RS_MAXDEV] = max(float(np.max(np.linalg.norm(s_src - s_rs, axis=1))),
+                             float(np.max(np.linalg.norm(m_src - m_rs, axis=1))))
+    return table
 
 
 @njit
