@@ -37,6 +37,12 @@ from numba import njit
 from propagator.constants import R_EARTH_EQ, R_MOON, R_SUN
 
 
+_CONE_R_FACTOR = 1.001
+"""Radius factor of the cone that bounds the penumbra (``visible_fraction_nb``; > 1/cos(alpha) = 1.0000115)."""
+_CONE_SLOPE = 0.005
+"""Slope of that cone (> tan(alpha) = 0.0048 for Earth and Moon at >= 1.46e11 m from the Sun)."""
+
+
 @njit
 def disc_overlap_fraction_nb(a, b, c):
     """Fraction of a disc of radius a covered by a disc of radius b at centre distance c.
@@ -72,7 +78,19 @@ def visible_fraction_nb(rx, ry, rz, bx, by, bz, sx, sy, sz, r_body):
         # Body centre >= 90 deg from the Sun; a + b < 90 deg unless within ~0.005 % of the
         # body's surface (a < 0.3 deg): fully lit, skip the trigonometry.
         return 1.0
-    nb = math.sqrt(dbx * dbx + dby * dby + dbz * dbz)
+    nb2 = dbx * dbx + dby * dby + dbz * dbz
+    nb = math.sqrt(nb2)
+    # Behind the body: outside a cone that contains the penumbra, fully lit, no trigonometry.
+    # The penumbra's outer boundary (c = a + b) is the cone tangent to Sun and body, of
+    # half-angle alpha, sin(alpha) = (R_sun + R_body) / |s - b| <= 0.0048 for the Earth or
+    # the Moon (|s - b| >= 1.46e11 m); its radius at depth x behind the body's centre is
+    # R_body / cos(alpha) + x tan(alpha) < 1.001 R_body + 0.005 x, x <= |r - b| = nb.
+    wx, wy, wz = dsx - dbx, dsy - dby, dsz - dbz            # s - b
+    q = dbx * wx + dby * wy + dbz * wz                       # (b - r).(s - b) > 0: behind
+    perp2 = nb2 - q * q / (wx * wx + wy * wy + wz * wz)      # squared distance from the axis
+    lim = _CONE_R_FACTOR * r_body + _CONE_SLOPE * nb
+    if perp2 > lim * lim:
+        return 1.0
     ns = math.sqrt(dsx * dsx + dsy * dsy + dsz * dsz)
     a = math.asin(min(1.0, R_SUN / ns))
     b = math.asin(r_body / nb)

@@ -19,8 +19,8 @@ from forcemodels.environment import ENV_MOON, ENV_SIZE, ENV_SUN
 from forcemodels.models import solar_radiation as srp
 from forcemodels.registry import CaseSetup
 from forcemodels.shadow import (disc_overlap_fraction_nb, illumination_moon_nb, illumination_nb,
-                                shadow_boundaries_nb)
-from propagator.constants import AU, C_LIGHT, J2000_JD, R_EARTH_EQ, R_SUN, SOLAR_IRRADIANCE_1AU
+                                shadow_boundaries_nb, visible_fraction_nb)
+from propagator.constants import AU, C_LIGHT, J2000_JD, R_EARTH_EQ, R_MOON, R_SUN, SOLAR_IRRADIANCE_1AU
 
 CASE = CaseSetup(epoch=(J2000_JD + 9000.0, 0.0), t_start=0.0, t_end=86400.0)
 
@@ -229,3 +229,53 @@ def test_moon_shadow_option() -> None:
             for y in np.linspace(0.0, 3.0e6, 3001)]
     assert any(0.0 < v < 1.0 for v in vals)
     assert np.all(np.diff(vals) >= 0.0)
+
+
+def _nu_full_geometry(r: np.ndarray, body: np.ndarray, sun: np.ndarray, r_body: float) -> tuple[float, float]:
+    """The conical model evaluated literally (M&G 2000 sec. 3.4): apparent radii by asin,
+    separation by the angle between the directions, no shortcut.  Returns (nu, c - (a + b))."""
+    db, ds = body - r, sun - r
+    a = math.asin(min(1.0, R_SUN / np.linalg.norm(ds)))
+    b = math.asin(r_body / np.linalg.norm(db))
+    c = math.atan2(np.linalg.norm(np.cross(db, ds)), db @ ds)
+    return 1.0 - disc_overlap_fraction_nb(a, b, c), c - (a + b)
+
+
+@pytest.mark.parametrize("body_kind", ["earth", "moon"])
+def test_lit_shortcut_changes_nothing(body_kind: str) -> None:
+    """The no-trigonometry 'fully lit' shortcuts (front hemisphere; outside a cone that
+    bounds the penumbra) never declare a point lit that the literal model puts in the
+    penumbra (c < a + b), and the function equals the literal model elsewhere, at points
+    crowded around the shadow: on and near the axis behind the body, across the penumbra
+    boundary, from the surface to 60 body radii (geometry: M&G 2000 sec. 3.4)."""
+    rng = np.random.default_rng(11)
+    sun = np.array([AU * 0.983, 0.0, 0.0])                       # perihelion: widest cone
+    if body_kind == "earth":
+        body, r_body = np.zeros(3), R_EARTH_EQ
+    else:
+        body, r_body = np.array([-3.0e8, 2.0e8, 1.0e7]), R_MOON
+    axis = (body - sun) / np.linalg.norm(body - sun)
+    e1 = np.cross(axis, [0.0, 0.0, 1.0])
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(axis, e1)
+    n_pen = n_lit = 0
+    for _ in range(20000):
+        depth = r_body * rng.uniform(-1.5, 60.0)                  # along the anti-sun axis
+        cone = r_body + max(depth, 0.0) * (R_SUN + r_body) / np.linalg.norm(sun - body)
+        rad = cone * rng.uniform(0.0, 1.6)                        # around the penumbra edge
+        ang = rng.uniform(0.0, 2.0 * math.pi)
+        r = body + depth * axis + rad * (math.cos(ang) * e1 + math.sin(ang) * e2)
+        if np.linalg.norm(r - body) <= r_body:
+            continue
+        got = visible_fraction_nb(*r, *body, *sun, r_body)
+        ref, g = _nu_full_geometry(r, body, sun, r_body)
+        if g < 0.0:                                               # inside the penumbra cone
+            assert got < 1.0, (r, got, ref, g)
+            n_pen += 1
+        else:
+            assert got == 1.0 and ref == 1.0, (r, got, ref, g)
+            n_lit += 1
+        # equal to the literal model up to round-off, which the overlap formula amplifies
+        # without bound at the umbra edge (d/dc sqrt(a^2 - x^2)): compared loosely
+        assert abs(got - ref) < 1e-6, (r, got, ref)
+    assert n_pen > 1000 and n_lit > 1000           # both sides of the boundary were sampled
