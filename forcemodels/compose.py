@@ -36,11 +36,15 @@ not remove these pairs when an exception path (division by zero, table span chec
 between them.  The dispatch functions are therefore compiled without NRT reference
 counting (numba's ``_nrt=False`` target option; they own no array and allocate nothing,
 slices are plain views) and the small ones are inlined at the numba-IR level
-(``inline="always"``).  Kernels called from them inherit the option when they are first
+(``inline="always"``), as are the kernels of models registered with ``inline=True``
+(the short ones: the call with six array arguments cost ~2-3 ns per model; P4 of
+``validation/bench_integrators.py`` 2.31 -> 2.13 ms, cold compile +4 s).  Kernels called from them inherit the option when they are first
 compiled inside the composed module, so **force-model kernels must not allocate** (use
-scratch space in ``d``; ``tests/test_compose.py`` compiles every kernel so).  The one
-allocating environment function (the analytic Moon series behind ``sun_moon_nb``) is
-called through a dispatcher compiled with NRT.  Measured after the change (same machine,
+scratch space in ``d``; ``tests/test_compose.py`` compiles every kernel so).  Sun and
+Moon come from the resampled series of the table (``resampled_sun_moon_nb``, inlined,
+no allocation); only a table without it (never built by the project; the source
+evaluator may allocate through the analytic Moon series) goes through ``sun_moon_nb``
+compiled with NRT as its own dispatcher.  Measured after the change (same machine,
 one run): point mass ~30 ns per ``accel_total`` (was ~420-830 ns), full set (12x12 field,
 Sun, Moon, SRP, relativity) ~1.0 us = 0.99 x the hand-fused kernel (was ~2.9 us, 1.9 x).
 """
@@ -128,6 +132,8 @@ from forcemodels.environment import ENV_ROT, ENV_SUN, ENV_MOON, ENV_POLE, ENV_SI
 from propagator.rotation_table import gcrf_to_itrf_nb as _rotation_nb
 from propagator.rotation_table import pole_nb as _pole_nb
 from forcemodels.ephemeris import sun_moon_nb as _sun_moon_kernel
+from forcemodels.ephemeris import resampled_sun_moon_nb as _sun_moon_resampled
+from forcemodels.ephemeris import H_RS_NSEG as _H_RS_NSEG
 '''
 
 _SUN_MOON_NRT = '''
@@ -150,7 +156,10 @@ def env_fill(t, forces):
     elif flags[FLAG_POLE]:
         _pole_nb(t, forces[12], env[ENV_POLE:ENV_POLE + 3])
     if flags[FLAG_SUN] or flags[FLAG_MOON]:
-        _sun_moon_nb(t, forces[7], env[ENV_SUN:ENV_SUN + 3], env[ENV_MOON:ENV_MOON + 3])
+        if forces[7][_H_RS_NSEG] > 0.0:       # resampled series: inlined, no allocation
+            _sun_moon_resampled(t, forces[7], env[ENV_SUN:ENV_SUN + 3], env[ENV_MOON:ENV_MOON + 3])
+        else:
+            _sun_moon_nb(t, forces[7], env[ENV_SUN:ENV_SUN + 3], env[ENV_MOON:ENV_MOON + 3])
 '''
 
 _GENERIC = '''
@@ -284,7 +293,11 @@ def generate_source() -> str:
     models = [registry.get(n) for n in names]
     lines = [_HEADER, _SUN_MOON_NRT if _NO_NRT else "_sun_moon_nb = _sun_moon_kernel\n"]
     for k, m in enumerate(models):
-        lines.append(f"from {m.module} import accel as _accel_{k}")
+        if m.inline:
+            lines.append(f"from {m.module} import accel as _accel_src_{k}")
+            lines.append(f"_accel_{k} = njit({_FAST_INLINE})(_accel_src_{k}.py_func)")
+        else:
+            lines.append(f"from {m.module} import accel as _accel_{k}")
         if m.partials is not None:
             lines.append(f"from {m.module} import partials as _partials_{k}")
     lines.append("")

@@ -69,6 +69,9 @@ class ForceModel:
         module: import path of the module holding ``accel``/``partials`` (``__name__``).
         conflicts_with: other model name -> reason; selecting both is a configuration
             error (:func:`check_conflicts`), e.g. zonal_j2 with gravity_field (C20 twice).
+        inline: compile ``accel`` inlined into the dispatch (numba ``inline="always"``):
+            for short kernels, where the call itself (six array arguments) is a
+            noticeable part of the cost; leave False for long ones (compile time).
     """
 
     name: str
@@ -82,6 +85,7 @@ class ForceModel:
     uses_velocity: bool = False
     module: str = ""
     conflicts_with: dict[str, str] = field(default_factory=dict)
+    inline: bool = False
 
     def __post_init__(self) -> None:
         unknown = set(self.needs) - set(ALL_NEEDS)

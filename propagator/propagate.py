@@ -147,8 +147,20 @@ def _event_arrays(events: Sequence[EventSpec], restart_at_shadow: bool) -> tuple
     return specs, hidden, ev_int, ev_par
 
 
+_TABLEAU_ARRAYS: dict[str, tuple[np.ndarray, ...]] = {}
+
+
 def tableau_arrays(tab: Tableau) -> tuple[np.ndarray, ...]:
-    """(A, c, b, e, e_aux, P, tab_int) as the compiled loop takes them."""
+    """(A, c, b, e, e_aux, P, tab_int) as the compiled loop takes them (built once per
+    method and process; the loop only reads them.  Not marked read-only: numba would
+    compile a second version of the loop for read-only arrays)."""
+    cached = _TABLEAU_ARRAYS.get(tab.name)
+    if cached is None:
+        cached = _TABLEAU_ARRAYS[tab.name] = _pack_tableau(tab)
+    return cached
+
+
+def _pack_tableau(tab: Tableau) -> tuple[np.ndarray, ...]:
     ti = np.zeros(_st.N_TAB, dtype=np.int64)
     ti[_st.TAB_STAGES] = tab.n_stages
     ti[_st.TAB_TOTAL] = tab.n_total

@@ -275,7 +275,12 @@ def test_generated_source_is_deterministic_and_complete():
     b = compose.generate_source()
     assert a == b
     for k, name in enumerate(registry.known_names()):
-        assert f"from {registry.get(name).module} import accel as _accel_{k}" in a
+        m = registry.get(name)
+        if m.inline:                         # recompiled from the Python source, inlined
+            assert f"from {m.module} import accel as _accel_src_{k}" in a
+            assert f"_accel_{k} = njit(" in a and f"(_accel_src_{k}.py_func)" in a
+        else:
+            assert f"from {m.module} import accel as _accel_{k}" in a
         assert f"        _accel_{k}(t, r, v, env, p, d, acc)" in a
     for fn in ("def accel_total(", "def partials_total(", "def env_fill(", "def model_accel(",
                "def integrate("):

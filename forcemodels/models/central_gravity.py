@@ -59,4 +59,5 @@ register(ForceModel(
     prepare=prepare,
     partials=partials,
     module=__name__,
+    inline=True,
 ))

@@ -54,4 +54,5 @@ register(ForceModel(
     needs=frozenset({NEED_MOON}),
     partials=partials,
     module=__name__,
+    inline=True,
 ))

@@ -86,4 +86,5 @@ register(ForceModel(
     partials=partials,
     uses_velocity=True,
     module=__name__,
+    inline=True,
 ))

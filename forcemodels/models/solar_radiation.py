@@ -121,4 +121,5 @@ register(ForceModel(
     needs=frozenset({NEED_SUN, NEED_MOON}),
     estimable={"cr": 0},
     module=__name__,
+    inline=True,
 ))

@@ -99,4 +99,5 @@ register(ForceModel(
     needs=frozenset({NEED_SUN}),
     partials=partials,
     module=__name__,
+    inline=True,
 ))

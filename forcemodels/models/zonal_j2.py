@@ -104,6 +104,7 @@ register(ForceModel(
     partials=partials,
     estimable={"j2": 2},
     module=__name__,
+    inline=True,
     conflicts_with={"gravity_field": (
         "the spherical-harmonic field already contains C20 (J2 = -sqrt(5) C_bar_20), so J2 would "
         "be counted twice; use gravity_field alone, or zonal_j2 with central_gravity")},
