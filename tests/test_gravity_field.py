@@ -394,3 +394,17 @@ def test_prepare_reuses_packed_data_but_never_shares_it():
     assert np.array_equal(a.d, b.d) and not np.shares_memory(a.d, b.d)
     c = registry.prepare("gravity_field", {"degree": 8, "order": 3}, CASE)
     assert c.d.size != a.d.size or not np.array_equal(c.d, a.d)
+
+
+def test_kernels_only_read_the_packed_data():
+    """accel/potential leave ``d`` untouched (no scratch space), for an even and an odd
+    number of V/W columns (order + 2 = 10 and 5: paired columns, then one alone)."""
+    fld = read_gfc(DEFAULT_FIELD_FILE)
+    for order in (8, 3):
+        d = sh.field_data(fld.C, fld.S, 8, order)
+        ref = d.copy()
+        for u in random_directions(3, seed=41):
+            r = 7.1e6 * u
+            sh.accel_bodyfixed(r[0], r[1], r[2], fld.gm, fld.radius, 8, order, d)
+            sh.potential_bodyfixed(r[0], r[1], r[2], fld.gm, fld.radius, 8, order, d)
+        assert np.array_equal(d, ref)
