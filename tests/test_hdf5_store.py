@@ -502,3 +502,28 @@ def test_summary_rows_and_table(tmp_path: Path) -> None:
     text = console.export_text()
     for word in ("leo-a", "leo-b", "leo-c", "complete", "failed", "12345", "[initial_state]", "1.000"):
         assert word in text, word
+
+
+def test_held_samples_of_a_short_case_reach_the_file_however_it_ends(tmp_path: Path) -> None:
+    """A short case is held in memory until it ends (written whole then); a stop, a
+    failure or closing the file with the case unfinished writes what was appended."""
+    path = tmp_path / "held.h5"
+    t = T[:50]
+    st = circular_arc(t)
+    with hs.StudyStore(path, study_name="s") as store:
+        for name in ("stopped", "failed", "open"):
+            w = store.begin_case(name, **EPOCH, case_config_toml=CONFIG_TOML, force_models=FORCE_MODELS)
+            w.append(t[:20], st[:20], elements=st[:20])
+            w.append(t[20:], st[20:], elements=st[20:])
+            assert w._pending and "time_s" not in store._f[f"cases/{name}"]  # held, not written yet
+        store.mark_interrupted("stopped", "interrupted by SIGINT")
+        store.mark_failed("failed", "RuntimeError: boom")
+    for name, status in (("stopped", "interrupted"), ("failed", "failed"), ("open", "running")):
+        d = hs.read_case(path, name)
+        assert d["status"] == status and d["attrs"]["n_samples"] == 50, name
+        assert np.array_equal(d["time_s"], t) and np.array_equal(d["state_gcrf"], st), name
+        assert np.array_equal(d["elements_osculating"], st), name
+    with h5py.File(path, "r") as f:
+        ds = f["cases/stopped/state_gcrf"]
+        assert ds.chunks is None and ds.compression is None and ds.maxshape == (50, 6)
+        assert list(ds.attrs["columns"]) == list(hs.STATE_COLUMNS) and ds.attrs["frame"] == "GCRF"

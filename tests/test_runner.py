@@ -705,21 +705,29 @@ def test_shadow_events_are_labelled_entry_and_exit():
 # --------------------------------------------------------------------------------------
 # throughput machinery, round 2: chunk rows, templates, reused worker store, TOML writer
 # --------------------------------------------------------------------------------------
-def test_chunks_follow_the_number_of_samples(inline_run, tmp_path):
-    """The runner passes the case's number of samples: short cases get chunks of exactly
-    that many rows; more rows than announced can still be appended."""
-    from propagator.study.hdf5_store import StudyStore
+def test_short_cases_are_written_whole_and_long_ones_chunked_by_the_number_of_samples(inline_run, tmp_path):
+    """A short case (time series <= SMALL_CASE_BYTES in all) is held in memory and written
+    whole when it ends: contiguous, unfiltered, fixed-extent datasets.  Longer cases are
+    streamed into chunked datasets whose chunks follow the announced number of samples;
+    more rows than announced can still be appended, and a case that outgrows the limit
+    (or is appended to after its samples were written whole) ends up chunked with the
+    same numbers."""
+    from propagator.study.hdf5_store import SMALL_CASE_BYTES, StudyStore
 
     _, _, path = inline_run
     with h5py.File(path, "r") as f:
         g = f["cases/leo-b"]  # 7200 s at 120 s: 61 samples (test_inline_run_file_contents)
-        for name in ("state_gcrf", "state_itrf", "elements_osculating", "acceleration/zonal_j2"):
-            assert g[name].chunks[0] == g[name].shape[0] == 61, name
-        assert g["time_s"].chunks == (61,) and g["stm"].chunks == (61, 6, 6)
+        for name in ("time_s", "state_gcrf", "state_itrf", "elements_osculating", "acceleration/zonal_j2", "stm"):
+            ds = g[name]
+            assert ds.shape[0] == 61 and ds.chunks is None and ds.compression is None and not ds.shuffle, name
+            assert ds.maxshape == ds.shape, name
+        assert int(g.attrs["n_samples"]) == 61
+
+    epoch = dict(epoch_iso="2024-01-01T00:00:00 TT", epoch_jd1=2460310.5, epoch_jd2=0.5, epoch_scale="TT",
+                 case_config_toml="", force_models=[])
     rows = np.arange(150.0).reshape(25, 6)
-    with StudyStore(tmp_path / "s.h5", study_name="x") as store:
-        w = store.begin_case("c", epoch_iso="2024-01-01T00:00:00 TT", epoch_jd1=2460310.5, epoch_jd2=0.5,
-                             epoch_scale="TT", case_config_toml="", force_models=[], expected_rows=10)
+    with StudyStore(tmp_path / "s.h5", study_name="x", small_case_bytes=0) as store:  # always streamed
+        w = store.begin_case("c", **epoch, expected_rows=10)
         for a, b in ((0, 4), (4, 17), (17, 25)):
             w.append(np.arange(a, b) * 1.0, rows[a:b])
         w.finish({"nfev": 1})
@@ -727,6 +735,42 @@ def test_chunks_follow_the_number_of_samples(inline_run, tmp_path):
         g = f["cases/c"]
         assert g["state_gcrf"].chunks == (10, 6) and g["time_s"].chunks == (10,)
         assert np.array_equal(g["state_gcrf"][()], rows) and np.array_equal(g["time_s"][()], np.arange(25.0))
+
+    n_long = SMALL_CASE_BYTES // (7 * 8) + 1  # time + 6 state columns: one row more than the limit
+    big = np.arange(n_long * 6.0).reshape(n_long, 6)
+    tb = np.arange(n_long) * 1.0
+    with StudyStore(tmp_path / "d.h5", study_name="x") as store:
+        w = store.begin_case("announced", **epoch, expected_rows=n_long)
+        w.append(tb[:5], big[:5])
+        assert "time_s" in store.file["cases/announced"]  # streamed from the first block
+        w.append(tb[5:], big[5:])
+        w.finish({})
+        w = store.begin_case("outgrown", **epoch)  # not announced: held, then streamed
+        w.append(tb[:100], big[:100])
+        w.append(tb[100:], big[100:])
+        w.finish({})
+        w = store.begin_case("reopened", **epoch, expected_rows=20)
+        w.append(tb[:20], big[:20])
+        assert w.group["state_gcrf"].chunks is None  # written whole on access
+        w.append(tb[20:30], big[20:30])  # then appended to: rewritten chunked
+        w.finish({})
+        w = store.begin_case("small", **epoch, expected_rows=30)
+        for a in range(0, 30, 7):
+            w.append(tb[a:min(a + 7, 30)], big[a:min(a + 7, 30)])
+        w.finish({})
+    with h5py.File(tmp_path / "d.h5", "r") as f:
+        for name, n, chunk in (("announced", n_long, n_long), ("outgrown", n_long, 4096), ("reopened", 30, 20),
+                               ("small", 30, None)):
+            g = f["cases"][name]
+            assert np.array_equal(g["state_gcrf"][()], big[:n]) and np.array_equal(g["time_s"][()], tb[:n]), name
+            assert int(g.attrs["n_samples"]) == n and g.attrs["status"] == "complete", name
+            if chunk is None:
+                assert g["state_gcrf"].chunks is None and g["time_s"].maxshape == (n,), name
+            else:
+                assert g["state_gcrf"].chunks == (chunk, 6) and g["state_gcrf"].compression == "lzf", name
+                assert g["time_s"].maxshape == (None,) and g["state_gcrf"].shuffle, name
+            assert g["time_s"].attrs["units"] == "s" and list(g["state_gcrf"].attrs["units"]) == \
+                ["m", "m", "m", "m/s", "m/s", "m/s"], name
 
 
 def _same_attrs(a: h5py.HLObject, b: h5py.HLObject) -> None:
@@ -787,6 +831,29 @@ def test_template_copies_store_what_direct_creation_stores(tmp_path):
         for i in range(4):
             _same_attrs(f[f"tpl{i}"], f[f"ref{i}"])
             assert f[f"tpl{i}"].id.get_create_plist().equal(f[f"ref{i}"].id.get_create_plist())
+
+
+def test_whole_series_from_templates_store_what_direct_creation_stores(tmp_path):
+    """A short case's series, copied from a template that holds their data, are the
+    datasets h5py makes from the same data and attributes (contiguous, no filters)."""
+    from propagator.study.hdf5_store import _GCRF_ATTRS, _TIME_ATTRS, StudyStore, _set_attrs
+
+    rows = np.arange(60.0).reshape(10, 6)
+    cases = ((rows, _GCRF_ATTRS), (rows * -0.5, _GCRF_ATTRS), (rows[:4], _GCRF_ATTRS),
+             (np.arange(7.0) * 1e9, _TIME_ATTRS), (rows, {"units": "km", "note": None}))
+    with StudyStore(tmp_path / "s.h5", study_name="x") as store:
+        for i, (data, attrs) in enumerate(cases):
+            g = store.file.create_group(f"g{i}")
+            store._write_whole_series(g, "tpl", data, attrs)
+            ref = g.create_dataset("ref", data=data)
+            _set_attrs(ref, attrs, new=True)
+    with h5py.File(tmp_path / "s.h5", "r") as f:
+        for i, (data, _) in enumerate(cases):
+            a, b = f[f"g{i}/tpl"], f[f"g{i}/ref"]
+            assert a.id.get_create_plist().equal(b.id.get_create_plist()) and a.id.get_type().equal(b.id.get_type())
+            assert a.chunks is None and a.maxshape == a.shape == data.shape and a.compression is None
+            _same_attrs(a, b)
+            assert a[()].tobytes() == data.tobytes() == b[()].tobytes()
 
 
 def test_worker_store_is_reused_and_images_carry_one_case(inline_run, tmp_path):
