@@ -31,7 +31,14 @@ Equations I*, 2nd ed., Springer 1993, "HNW I"):
   integrator discard the step that crossed it, redo it with h landing exactly on the
   event time, and continue from there with fresh stages and controller memory (for
   force models with a kink there, e.g. SRP at shadow boundaries; f itself is continuous,
-  so f(t_event) is reused as the first stage);
+  so f(t_event) is reused as the first stage).  A step across such a kink usually fails
+  the error test; when a rejected step (error estimate < ``_KINK_ERR_MAX``) shows a
+  restart event's sign change, the event is located on that step's dense output and
+  the next attempt lands there, instead of shrinking the step until one passes (the
+  kink, not the step size, caused the error).  Measured on P4 of
+  validation/bench_integrators.py: evaluations -15 %, rejections 110 -> 53, the same
+  final error against a max-step-30-s reference (2.2 mm vs 3.3 mm at rtol 1e-13),
+  located times equal to the accepted-step location within 1e-9 s;
 * variational equations Phi' = A Phi, S' = A S + [0; da/dp] with A = [[0, I],
   [da/dr, da/dv]] integrated with the state (Montenbruck & Gill, *Satellite Orbits*,
   2000, Sec. 7.2).
@@ -517,6 +524,37 @@ def _rk_solution(t, h, y, comp, K, A, c, b, s, kahan, forces, ns, ytmp, ynew, co
             compnew[i] = 0.0
 
 
+_KINK_ERR_MAX = 1e4
+"""Largest error estimate of a rejected step still used to locate a kink inside it: its
+dense output is then within ~1e4 tolerances, i.e. the event time within ~1e-7 s at GNSS
+radius and tight tolerances (our choice; measured in tests/test_integrators.py)."""
+
+
+@njit(**_HOT_INLINE)
+def _wanted_crossing(g0, g1, h, want):
+    """A sign change of g over a step of signed length h in a requested sense (want: +1
+    rising, -1 falling, 0 both; in physical time), as in :func:`_find_events`."""
+    up = g0 < 0.0 and g1 >= 0.0
+    down = g0 > 0.0 and g1 <= 0.0
+    rising = up if h > 0.0 else down
+    falling = down if h > 0.0 else up
+    return (rising and want >= 0) or (falling and want <= 0)
+
+
+@njit(**_HOT)
+def _restart_crossed(ynew, h, ev_int, ev_par, forces, sh, g_old, g_new, skip_k):
+    """True if a restart (non-terminal) event function changes sign over a rejected step
+    (env already filled at its end); fills g_new[k] of the restart events."""
+    found = False
+    for k in range(ev_int.shape[0]):
+        if k == skip_k or ev_int[k, EVI_RESTART] == 0 or ev_int[k, EVI_TERMINAL] != 0:
+            continue
+        g_new[k] = _event_value_env(ev_int[k, EVI_KIND], ynew, ev_par[k], forces, sh)
+        if _wanted_crossing(g_old[k], g_new[k], h, ev_int[k, EVI_DIR]):
+            found = True
+    return found
+
+
 @njit(**_HOT)
 def _find_events(t, h, t_new, y, ynew, K, A, c, P, s, nt, deg, forces, ns, ytmp, Q,
                  acc, dadr, dadv, dadp, ev_int, ev_par, g_old, g_new, skip_k, sh,
@@ -813,6 +851,7 @@ def _steps(t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_times, ev_int
 
         _rk_solution(t, h, y, comp, K, A, c, b, s, kahan, forces, ns, ytmp, ynew, compnew,
                      acc, dadr, dadv, dadp)
+        skip_kink = stop_k if (clamped and stop_k >= 0) else n_ev
         if clamped:
             t_new = target
             tc_new = 0.0
@@ -841,6 +880,34 @@ def _steps(t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_times, ev_int
             continue
         nonfinite_streak = 0
         if err > 1.0:
+            if n_ev > 0 and err < _KINK_ERR_MAX and _restart_crossed(ynew, h, ev_int, ev_par, forces, sh,
+                                                                   g_old, g_new, skip_kink):
+                # A restart event (a kink of f) lies inside this rejected step: the error
+                # is the kink's, not the step size's.  Locate the earliest such event on
+                # the dense output of this step and land there (module docstring).
+                stats[STAT_NFEV] += _dense_prepare(t, h, y, K, A, c, P, s, nt, deg, forces, ns,
+                                                   ytmp, Q, acc, dadr, dadv, dadp)
+                stats[STAT_DENSE] += 1
+                k_kink = -1
+                th_kink = 2.0
+                for k in range(n_ev):
+                    if (k == skip_kink or ev_int[k, EVI_RESTART] == 0 or ev_int[k, EVI_TERMINAL] != 0
+                            or not _wanted_crossing(g_old[k], g_new[k], h, ev_int[k, EVI_DIR])):
+                        continue
+                    th = _locate(ev_int[k, EVI_KIND], ev_par[k], t, h, y, Q, deg, forces, ytmp,
+                                 sh, g_old[k], g_new[k], 1e-10 / abs(h))
+                    if th < th_kink:
+                        th_kink = th
+                        k_kink = k
+                stats[STAT_REJECTED] += 1
+                stats[STAT_RESTARTS] += 1
+                stop_k = k_kink
+                t_stop = t + th_kink * h
+                stop_g = g_new[k_kink]
+                stop_d = 1 if (g_new[k_kink] > 0.0) == (h > 0.0) else -1
+                h_abs = abs(h)              # after landing: this step size (then controlled)
+                rejected_last = True
+                continue
             stats[STAT_REJECTED] += 1
             h_abs = abs(h) * max(fac_min, safety * err ** (-1.0 / (err_order + 1.0)))
             rejected_last = True
