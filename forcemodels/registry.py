@@ -154,19 +154,36 @@ def check_conflicts(names: list[str] | tuple[str, ...]) -> None:
                 raise ValueError(f"force models {name!r} and {other!r} cannot be selected together: {reason}")
 
 
+_DEFAULTS: dict[str, tuple[pydantic.BaseModel, dict]] = {}
+
+
+def _defaults(name: str) -> tuple[pydantic.BaseModel, dict]:
+    """Model ``name``'s parameters with every default, validated once per process, and
+    their JSON form (a fresh copy of the dict goes to each preparation's metadata)."""
+    hit = _DEFAULTS.get(name)
+    if hit is None:
+        validated = get(name).params.model_validate({})
+        hit = _DEFAULTS[name] = (validated, validated.model_dump(mode="json"))
+    return hit
+
+
 def prepare(name: str, params: dict[str, Any] | pydantic.BaseModel | None, case: CaseSetup) -> PreparedModel:
     """Validate ``params`` for model ``name`` and build its compiled-side data."""
     model = get(name)
+    dumped = None
     if isinstance(params, pydantic.BaseModel):
         validated = params
+    elif not params:
+        validated, dumped = _defaults(name)
     else:
         try:
-            validated = model.params.model_validate(params or {})
+            validated = model.params.model_validate(params)
         except pydantic.ValidationError as exc:
             raise ValueError(f"force model {name!r}: invalid parameters:\n{exc}") from None
     p, d, meta = model.prepare(validated, case)
     p = np.ascontiguousarray(p, dtype=np.float64).ravel()
     d = np.ascontiguousarray(d, dtype=np.float64).ravel()
-    meta = {"model": name, **meta, "parameters": validated.model_dump(mode="json")}
+    meta = {"model": name, **meta,
+            "parameters": dict(dumped) if dumped is not None else validated.model_dump(mode="json")}
     return PreparedModel(name=name, kind=kind_of(name), p=p, d=d, needs=frozenset(model.needs),
                          metadata=meta, estimable=dict(model.estimable))

@@ -160,10 +160,15 @@ class OutputGrid:
         if self.step_s is not None and not (math.isfinite(self.step_s) and self.step_s > 0.0):
             raise ValueError(f"OutputGrid.step_s must be a finite positive number of seconds, got {self.step_s!r}")
         if self.times_s is not None:
-            arr = np.ascontiguousarray(self.times_s, dtype=np.float64).ravel()
+            arr = np.array(self.times_s, dtype=np.float64).ravel()      # own copy
             if not np.all(np.isfinite(arr)):
                 raise ValueError("OutputGrid.times_s must be finite")
             object.__setattr__(self, "times_s", arr)
+            # checked once here, not at every propagation (times() is on the per-run path)
+            d = np.diff(arr)
+            object.__setattr__(self, "_ascending", bool(np.all(d >= 0.0)))
+            object.__setattr__(self, "_descending", bool(np.all(d <= 0.0)))
+            object.__setattr__(self, "_range", (float(arr.min()), float(arr.max())) if arr.size else None)
 
     def times(self, t0: float, t_end: float) -> np.ndarray | None:
         """Output times for a run from t0 to t_end (None in every-step mode)."""
@@ -181,11 +186,11 @@ class OutputGrid:
             return times
         times = self.times_s
         if times.size:
-            d = np.diff(times) * direction
-            if np.any(d < 0.0):
+            if not (self._ascending if direction > 0.0 else self._descending):
                 raise ValueError("OutputGrid.times_s must be sorted in the direction of integration")
             lo, hi = min(t0, t_end), max(t0, t_end)
-            if times.min() < lo or times.max() > hi:
+            t_min, t_max = self._range
+            if t_min < lo or t_max > hi:
                 raise ValueError(f"OutputGrid.times_s must lie within the propagation span [{lo}, {hi}] s")
         return times
 
