@@ -527,3 +527,32 @@ def test_held_samples_of_a_short_case_reach_the_file_however_it_ends(tmp_path: P
         ds = f["cases/stopped/state_gcrf"]
         assert ds.chunks is None and ds.compression is None and ds.maxshape == (50, 6)
         assert list(ds.attrs["columns"]) == list(hs.STATE_COLUMNS) and ds.attrs["frame"] == "GCRF"
+
+
+def test_closing_with_a_case_unfinished_cuts_an_append_stopped_part_way(tmp_path: Path) -> None:
+    """An append stopped between its datasets (as by a signal) leaves a longer time_s;
+    closing the store keeps the rows of completed appends only (n_samples)."""
+    path = tmp_path / "cut.h5"
+    t = T[:300]
+    st = circular_arc(t)
+    with hs.StudyStore(path, study_name="s", small_case_bytes=0) as store:
+        w = store.begin_case("open", **EPOCH, case_config_toml=CONFIG_TOML, force_models=FORCE_MODELS)
+        w.append(t[:200], st[:200], elements=st[:200])
+        hs._append_rows(w._grp["time_s"], t[200:])  # the next append got this far
+        assert store._f["cases/open/time_s"].shape == (300,)
+    d = hs.read_case(path, "open")
+    assert d["status"] == "running" and d["attrs"]["n_samples"] == 200
+    for k in ("time_s", "state_gcrf", "elements_osculating"):
+        assert d[k].shape[0] == 200, k
+    assert np.array_equal(d["time_s"], t[:200]) and np.array_equal(d["state_gcrf"], st[:200])
+
+
+def test_utc_time_stamps(tmp_path: Path) -> None:
+    import re
+
+    before = dt.datetime.now(dt.timezone.utc)
+    stamp = hs._utc_now()
+    after = dt.datetime.now(dt.timezone.utc)
+    assert re.fullmatch(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{6}Z", stamp)
+    got = dt.datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=dt.timezone.utc)
+    assert before - dt.timedelta(microseconds=1) <= got <= after

@@ -839,8 +839,11 @@ def test_whole_series_from_templates_store_what_direct_creation_stores(tmp_path)
     from propagator.study.hdf5_store import _GCRF_ATTRS, _TIME_ATTRS, StudyStore, _set_attrs
 
     rows = np.arange(60.0).reshape(10, 6)
+    neg_zero = rows.copy()
+    neg_zero[0, 0] = -0.0  # equal to rows as numbers, not as bytes: must be written
     cases = ((rows, _GCRF_ATTRS), (rows * -0.5, _GCRF_ATTRS), (rows[:4], _GCRF_ATTRS),
-             (np.arange(7.0) * 1e9, _TIME_ATTRS), (rows, {"units": "km", "note": None}))
+             (np.arange(7.0) * 1e9, _TIME_ATTRS), (rows, {"units": "km", "note": None}),
+             (rows, _GCRF_ATTRS), (rows, _GCRF_ATTRS), (neg_zero, _GCRF_ATTRS), (rows, _GCRF_ATTRS))
     with StudyStore(tmp_path / "s.h5", study_name="x") as store:
         for i, (data, attrs) in enumerate(cases):
             g = store.file.create_group(f"g{i}")
@@ -906,3 +909,124 @@ def test_toml_values_read_back_bitwise():
     for v in (0, -7, 2 ** 40, True, False, "", "a\"b\\c\n\té", np.float64(0.3), np.int64(-4), np.bool_(True)):
         back = tomllib.loads(f"x = {_toml_value(v)}")["x"]
         assert back == v and type(back) is type(v.item() if isinstance(v, np.generic) else v), v
+
+
+def test_plain_attribute_values_from_templates_are_stored_bitwise(tmp_path):
+    """Template groups compare plain values (str, int, float, bool) as Python values:
+    -0.0 after 0.0, NaN, True after 1 and 1.0 after 1 are still stored as direct
+    creation stores them; _overwrite_plain_attrs stores what _set_attrs stores."""
+    from propagator.study.hdf5_store import (StudyStore, _create_group_with_attrs, _overwrite_plain_attrs,
+                                             _set_attrs)
+
+    seq = [{"x": 0.0, "n": 1, "b": True, "s": "a", "v": [1.0, 2.0]},
+           {"x": -0.0, "n": 1, "b": True, "s": "a", "v": [1.0, 2.0]},
+           {"x": float("nan"), "n": -2 ** 62, "b": False, "s": "é", "v": [1.0, -0.0]},
+           {"x": 0.0, "n": True, "b": 1, "s": "", "v": [1.0, 2.0]},      # other types: other template
+           {"x": 1, "n": 1.0, "b": 0.0, "s": None, "v": [1.0, 2.0]},
+           {"x": -0.0, "n": 1, "b": True, "s": "a", "v": [1.0, 2.0]}]
+    with StudyStore(tmp_path / "p.h5", study_name="x") as store:
+        f = store.file
+        for i, values in enumerate(seq):
+            a = _create_group_with_attrs(f, f"tpl{i}", values)
+            b = f.create_group(f"ref{i}")
+            _set_attrs(b, values, new=True)
+            _same_attrs(a, b)
+        start = {"n_samples": 0, "status": "running", "finished_utc": "", "x": 0.0}
+        end = {"n_samples": 289, "status": "complete", "finished_utc": "2026-01-01T00:00:00.000000Z",
+               "x": -0.0, "new": 2.5, "arr": [1.0, 2.0], "flag": np.bool_(True)}
+        a = _create_group_with_attrs(f, "fast", start)
+        b = f.create_group("slow")
+        _set_attrs(b, start, new=True)
+        _overwrite_plain_attrs(a, end)
+        _set_attrs(b, end)
+        _same_attrs(a, b)
+    with h5py.File(tmp_path / "p.h5", "r") as f:
+        for i in range(len(seq)):
+            _same_attrs(f[f"tpl{i}"], f[f"ref{i}"])
+        _same_attrs(f["fast"], f["slow"])
+        assert math.copysign(1.0, f["fast"].attrs["x"]) == -1.0
+
+
+def test_stale_template_groups_are_remade_with_the_current_values(tmp_path):
+    """A template whose value keeps differing from the groups made from it (they agree
+    with each other) is remade after TEMPLATE_REFRESH_STREAK groups; every group still
+    stores what direct creation stores."""
+    from propagator.study import hdf5_store as hs
+
+    key_names = {"only_here_a": 0.0, "only_here_b": "x", "n": 0}
+    with hs.StudyStore(tmp_path / "r.h5", study_name="x") as store:
+        f = store.file
+        for i in range(12):
+            values = dict(key_names) if i == 0 else {"only_here_a": 5.0, "only_here_b": "sweep", "n": i}
+            a = hs._create_group_with_attrs(f, f"tpl{i}", values)
+            b = f.create_group(f"ref{i}")
+            hs._set_attrs(b, values, new=True)
+            _same_attrs(a, b)
+        made = [t for k, t in hs._templates().groups.items() if {e[0] for e in k} == set(key_names)]
+        assert len(made) == 1 and made[0].remade == 1 and made[0].values["only_here_a"] == 5.0
+    with h5py.File(tmp_path / "r.h5", "r") as f:
+        for i in range(12):
+            _same_attrs(f[f"tpl{i}"], f[f"ref{i}"])
+
+
+def test_cached_setup_pieces_equal_direct_construction():
+    """Settings, events and anomalies cached per process equal those made directly, and
+    values that compare equal but differ (-0.0 and 0.0) do not share a cache entry."""
+    from propagator import elements as el
+    from propagator.integrators.settings import EventSpec, IntegratorSettings
+    from propagator.study import runner as R
+
+    s = parse_study(tomllib.loads(TINY.replace("[cases.leo-a]", "[cases.leo-a]\ninitial_state.mean_anomaly_deg = 33.0")))
+    for case in s.cases:
+        ic = case.config.integrator
+        direct = IntegratorSettings(method=ic.method, rtol=ic.relative_tolerance, atol_pos_m=ic.absolute_tolerance_m,
+                                    atol_vel_m_s=ic.absolute_tolerance_m_s, max_steps=ic.max_steps)
+        assert R._integrator_settings(case) == direct and R._integrator_settings(case) is R._integrator_settings(case)
+        evs, r_stop = R._events(case)
+        expect = [EventSpec(kind=k) for k in case.config.output.record_events]
+        assert evs[:len(expect)] == expect and evs is not R._events(case)[0]  # a new list each call
+        assert (r_stop is None) == (case.config.stop.min_altitude_m is None)
+    rng = np.random.default_rng(3)
+    for M, e in [(0.0, 0.0), (-0.0, 0.0), (0.0, 0.3)] + [(float(m), float(x)) for m, x in
+                                                         zip(rng.uniform(-7, 7, 20), rng.uniform(0, 0.95, 20))]:
+        got, ref = R._mean_to_true(M, e), float(el.mean_to_true(M, e))
+        assert got == ref and math.copysign(1.0, got) == math.copysign(1.0, ref), (M, e)
+    assert R._exact_key(0.0) != R._exact_key(-0.0)
+    # the first segment's output times are shared (read-only) by cases with the same grid
+    a, b = s.case("leo-a"), s.case("low")
+    ga, gb = R._SegmentGrid(a, 7200.0), R._SegmentGrid(b, 7200.0)
+    sel_a, out_a = R._first_segment_output(ga, 0.0, 3600.0)
+    sel_b, out_b = R._first_segment_output(gb, 0.0, 3600.0)
+    sel_ref, out_ref = R._segment_output(ga, 0, 0.0, 3600.0)
+    assert sel_a is sel_b and out_a is out_b and not sel_a.flags.writeable
+    assert sel_a.tobytes() == sel_ref.tobytes() and out_a.times_s.tobytes() == out_ref.times_s.tobytes()
+    assert R._first_segment_output(ga, 0.0, 7200.0)[0].size == 61  # another segment: its own entry
+
+
+def test_setups_made_in_batches_give_the_same_file(inline_run, tmp_path, monkeypatch):
+    """Cases set up in batches (several at once, a failing one among them) give the same
+    numbers and attributes as the inline run, and a case whose setup fails still fails
+    alone with its reason."""
+    from propagator.study import runner as R
+
+    study, _, path = inline_run
+    monkeypatch.setattr(R, "SETUP_BATCH", 2)
+    report = run_study(study, output=tmp_path / "b.h5", workers=1, progress=False)
+    assert sorted(report.complete) == ["leo-a", "leo-b"] and list(report.failed) == ["low"]
+    assert report.failed["low"] == read_case(path, "low")["attrs"]["error"]
+    for c in study.cases:
+        a, b = read_case(path, c.name), read_case(tmp_path / "b.h5", c.name)
+        assert same_case(a, b), c.name
+        for k in ("case_config_toml", "force_models_json", "sweep_values_json", "object_name", "case_origin",
+                  "segment_length_s", "duration_s", "epoch_jd1", "epoch_jd2", "n_samples"):
+            assert a["attrs"].get(k) == b["attrs"].get(k), (c.name, k)
+        assert set(a["integrator_statistics"]) == set(b["integrator_statistics"])
+
+
+def test_study_file_gets_a_fixed_metadata_cache(tmp_path):
+    from propagator.study.hdf5_store import METADATA_CACHE_BYTES, StudyStore
+
+    with StudyStore(tmp_path / "m.h5", study_name="x") as store:
+        cfg = store.file.id.get_mdc_config()
+        assert cfg.max_size == cfg.min_size == METADATA_CACHE_BYTES
+        assert (cfg.incr_mode, cfg.flash_incr_mode, cfg.decr_mode) == (0, 0, 0)

@@ -403,3 +403,33 @@ def test_shipped_configs_are_valid(path):
     assert s.cases
     for c in s.cases:
         assert case_from_toml(c.name, c.to_toml()).config == c.config
+        _check_toml_is_resolved_dict(c)
+
+
+def _check_toml_is_resolved_dict(case) -> None:
+    """to_toml() is its comment lines followed by dumps_toml(resolved_dict()) byte for
+    byte (it skips resolved_dict's copies) and leaves the case's force parameters alone."""
+    import copy
+
+    forces = copy.deepcopy(case.forces)
+    text = case.to_toml()
+    head = [ln for ln in text.split("\n") if ln.startswith("# ")]
+    assert head[0] == f"# longarc case {case.name!r}, fully resolved"
+    assert text == "\n".join(head) + "\n" + dumps_toml(case.resolved_dict())
+    assert case.forces == forces
+
+
+def test_resolved_toml_is_header_and_resolved_dict():
+    s = study("""
+[cases.x]
+description = "quotes \\" and unicode é"
+[cases.x.initial_state]
+raan_deg = -0.0
+[[sweeps]]
+name = "g"
+base = "x"
+grid."initial_state.raan_deg" = [0.0, 90.0]
+""")
+    assert len(s.cases) == 3
+    for c in s.cases:
+        _check_toml_is_resolved_dict(c)

@@ -548,7 +548,10 @@ class ResolvedCase:
             head.append(f"# sweep {self.sweep}" + (f" based on case {self.base_case}" if self.base_case else ""))
         for k, v in self.sweep_values.items():
             head.append(f"# sweep value {k} = {_toml_value(v)}")
-        return "\n".join(head) + "\n" + dumps_toml(self.resolved_dict())
+        # what resolved_dict() gives, without copying the force parameters (only read here)
+        d = self.config.model_dump(mode="python", exclude_none=True)
+        d["forces"] = [{"model": n, **p} for n, p in self.forces]
+        return "\n".join(head) + "\n" + dumps_toml(d)
 
 
 @dataclass
