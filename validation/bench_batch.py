@@ -23,7 +23,8 @@ JSON keys:
   process actually used (``RunReport.workers``), in steady state: the marginal rate
   (N2 - N1) / (T2 - T1) / workers between a run of N1 = 4 x workers cases and one of N2
   cases, which removes the fixed costs of a run (starting the workers, their warm-up,
-  opening the file).  ``cases_per_s_per_core_pool_end_to_end``: N2 / T2 / workers with
+  opening the file).  (null when T2 - T1 is under a quarter of T2: the start-up spread then swamps it, as in
+  ``--quick``).  ``cases_per_s_per_core_pool_end_to_end``: N2 / T2 / workers with
   those costs.  ``pool_breakdown_ms``: the marginal stage times per case of the pool
   runs (stage sums of the N2 run minus those of the N1 run, over N2 - N1; worker stages
   ``case_from_toml`` and ``worker_file``, parent stage ``parent_import``).
@@ -202,7 +203,10 @@ def _throughput(n_cases: int, tmp: Path) -> dict:
     rep2 = run_study(study, output=tmp / "pool.h5", workers=n_pool, progress=False, plots=False)
     wall2 = time.perf_counter() - t0
     used = rep2.workers
-    marginal = (len(cases) - n1) / max(wall2 - wall_small, 1e-9) / used
+    # steady-state rate from the difference of two runs; None when the difference is lost
+    # in the run-to-run spread of the fixed costs (worker start-up dominates --quick)
+    dwall = wall2 - wall_small
+    marginal = (len(cases) - n1) / dwall / used if dwall > 0.25 * wall2 else None
     return {"n_cases": len(cases), "inline_wall_s": wall1, "pool_wall_s": wall2, "pool_workers": used,
             "pool_small_cases": n1, "pool_small_wall_s": wall_small,
             "per_core_pool": marginal, "per_core_pool_end_to_end": len(cases) / wall2 / used,
@@ -297,7 +301,9 @@ def main() -> int:
     print(f"\n{'quantity':<38} {'value':>12}")
     print(f"{'cases per second per core (1-d MEO)':<38} {per_core:12.3f}")
     print(f"{'cases per second, pool of ' + str(tp['pool_workers']):<38} {rep.values['cases_per_s_pool']:12.3f}")
-    print(f"{'  per worker, steady state':<38} {tp['per_core_pool']:12.3f}")
+    steady = tp['per_core_pool']
+    print(f"{'  per worker, steady state':<38} " + (f"{steady:12.3f}" if steady is not None
+                                                     else "  not measurable (start-up spread)"))
     print(f"{'  per worker, end to end':<38} {tp['per_core_pool_end_to_end']:12.3f}")
     print("per-case breakdown [ms] (one process):")
     for k, v in tp["breakdown"].items():
