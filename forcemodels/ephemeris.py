@@ -497,6 +497,66 @@ def _source_sun_moon_many(ts, table, sun, moon):
         source_sun_moon_nb(ts[i], table, sun[i], moon[i])
 
 
+def _chebyshev_sum_np(coef: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """sum_j coef[..., j] T_j(x) for per-sample coefficient rows coef (n, ..., m) and
+    arguments x (n,), by the recurrence T_j = 2x T_(j-1) - T_(j-2)."""
+    m = coef.shape[-1]
+    shape = (x.size,) + (1,) * (coef.ndim - 2)
+    xr = x.reshape(shape)
+    t_prev = np.ones_like(xr)
+    t_cur = xr
+    acc = coef[..., 0] * t_prev + coef[..., 1] * t_cur
+    for j in range(2, m):
+        t_prev, t_cur = t_cur, 2.0 * xr * t_cur - t_prev
+        acc = acc + coef[..., j] * t_cur
+    return acc
+
+
+def _series_np(table: np.ndarray, b: int, days: np.ndarray, n_axes: int) -> np.ndarray:
+    """Series b of a source table at ``days`` after its first set, (n, n_axes) or (n,)."""
+    base = H_BODY + 4 * b
+    n_sets, n_coef = int(table[base + B_NSETS]), int(table[base + B_NCOEF])
+    span, off = table[base + B_SPAN_DAYS], int(table[base + B_OFFSET])
+    k = np.clip(np.floor(days / span).astype(np.int64), 0, n_sets - 1)
+    x = 2.0 * (days - k * span) / span - 1.0
+    sets = table[off:off + n_sets * n_axes * n_coef].reshape(n_sets, n_axes, n_coef)
+    out = _chebyshev_sum_np(sets[k], x)
+    return out if n_axes > 1 else out[:, 0]
+
+
+def _source_positions_np(table: np.ndarray, ts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Geocentric Sun and Moon [m], (n, 3) each, at ts [s since epoch, TT] from the source
+    series of ``table``: the computation of :func:`source_sun_moon_nb` in numpy (the same
+    formulas; sums in another order, so equal to round-off)."""
+    ts = np.asarray(ts, dtype=np.float64)
+    if table[H_SOURCE] != SOURCE_DE421:
+        from forcemodels.analytic_ephemeris import (moon_position_analytic_nb as _mo,
+                                                    sun_position_analytic_nb as _su)
+        sun, moon = np.empty((ts.size, 3)), np.empty((ts.size, 3))
+        for i, t in enumerate(ts):         # the plain-Python form: nothing to compile
+            T = table[H_T0_CENT] + t / _SECONDS_PER_CENTURY
+            _su.py_func(T, sun[i])
+            _mo.py_func(T, moon[i])
+        return sun, moon
+    tt_days = table[H_E0_DAYS] + ts * _INV_DAY
+    days = table[H_E0_DAYS] + (ts + _series_np(table, SERIES_TDB_TT, tt_days, 1)) * _INV_DAY
+    moon = _series_np(table, BODY_MOON, days, 3)
+    sun = (_series_np(table, BODY_SUN, days, 3) - _series_np(table, BODY_EMB, days, 3)
+           + table[H_EARTH_SHARE] * moon)
+    return sun, moon
+
+
+def _resampled_positions_np(table: np.ndarray, ts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`resampled_sun_moon_nb` in numpy (build-time checks)."""
+    n_seg, n = int(table[H_RS_NSEG]), int(table[H_RS_NCOEF])
+    u = (np.asarray(ts, dtype=np.float64) - table[H_RS_T0]) * table[H_RS_INV_SEG]
+    k = np.clip(u.astype(np.int64), 0, n_seg - 1)
+    off = int(table[H_RS_OFFSET])
+    coef = table[off:off + n_seg * 6 * n].reshape(n_seg, 6, n)
+    out = _chebyshev_sum_np(coef[k], 2.0 * (u - k) - 1.0)
+    return out[:, :3], out[:, 3:]
+
+
 RESAMPLE_SEGMENT_S = SECONDS_PER_DAY
 """Longest segment of the resampled series [s] (our choice; errors in the module docstring)."""
 RESAMPLE_NCOEF = 9
@@ -519,7 +579,8 @@ def _append_resampled(source: np.ndarray, segment_s: float = RESAMPLE_SEGMENT_S,
     """``source`` + geocentric Sun and Moon re-fitted as Chebyshev series in TT seconds.
 
     The span [H_T_MIN, H_T_MAX] is cut into equal segments of at most ``segment_s``; on
-    each, both bodies are evaluated with :func:`source_sun_moon_nb` at the n_coef
+    each, both bodies are evaluated from the source series (in numpy,
+    :func:`_source_positions_np`: the build compiles nothing) at the n_coef
     Chebyshev nodes and transformed (:func:`_chebyshev_fit`).  The deviation from the
     source is measured at the segment mid-points and quarter points (between the nodes)
     and stored in the header (H_RS_MAXDEV, metres)."""
@@ -530,9 +591,7 @@ def _append_resampled(source: np.ndarray, segment_s: float = RESAMPLE_SEGMENT_S,
     x = np.cos(np.pi * (np.arange(n_coef) + 0.5) / n_coef)
     ts = t_lo + seg * (np.arange(n_seg)[:, None] + 0.5 * (x[None, :] + 1.0))
     ts = np.clip(ts, t_lo, t_hi).ravel()
-    sun = np.empty((ts.size, 3))
-    moon = np.empty((ts.size, 3))
-    _source_sun_moon_many(ts, table, sun, moon)
+    sun, moon = _source_positions_np(table, ts)
     vals = np.concatenate([sun.reshape(n_seg, n_coef, 3), moon.reshape(n_seg, n_coef, 3)], axis=2)
     coef = _chebyshev_fit(np.ascontiguousarray(vals.transpose(0, 2, 1)))     # (n_seg, 6, n_coef)
     table[H_RS_NSEG] = n_seg
@@ -545,10 +604,8 @@ def _append_resampled(source: np.ndarray, segment_s: float = RESAMPLE_SEGMENT_S,
     # deviation from the source between the nodes
     tc = t_lo + seg * (np.arange(n_seg)[:, None] + np.array([0.25, 0.5, 0.75])[None, :])
     tc = tc.ravel()
-    s_src, m_src = np.empty((tc.size, 3)), np.empty((tc.size, 3))
-    s_rs, m_rs = np.empty((tc.size, 3)), np.empty((tc.size, 3))
-    _source_sun_moon_many(tc, table, s_src, m_src)
-    _sun_moon_many(tc, table, s_rs, m_rs)
+    s_src, m_src = _source_positions_np(table, tc)
+    s_rs, m_rs = _resampled_positions_np(table, tc)
     table[H_RS_MAXDEV] = max(float(np.max(np.linalg.norm(s_src - s_rs, axis=1))),
                              float(np.max(np.linalg.norm(m_src - m_rs, axis=1))))
     return table
