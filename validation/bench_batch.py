@@ -8,7 +8,9 @@ JSON keys:
   (point mass + gravity field 12x12 + Sun + Moon + SRP, 5-minute output, osculating
   elements, HDF5 written), through ``propagator.study.runner`` in one process (one
   core), after a warm-up case that absorbs every compilation (numba cache load, element
-  conversions, first reads of the EOP / ephemeris / gravity files).
+  conversions, first reads of the EOP / ephemeris / gravity files); the fastest of
+  ``INLINE_REPEATS`` = 3 whole runs (each into a new file; all three rates in
+  ``cases_per_s_per_core_each_run``).
   ``per_case_breakdown_ms``: the mean wall time of one of those cases by stage, from the
   runner's own stage timers (``RunReport.stage_seconds``): ``setup`` (epoch, initial
   state, settings, resolved TOML), ``propagate`` (force-model preparation, the rotation
@@ -140,6 +142,11 @@ _CHILD = textwrap.dedent("""
 """)
 
 
+INLINE_REPEATS = 3
+"""Whole-study runs timed for ``cases_per_s_per_core``; the fastest counts (common practice
+on a shared machine, as ``best_of`` in ``_bench_problems.py``)."""
+
+
 def _meo_study(n: int) -> str:
     grav = ('{ model = "gravity_field", degree = 12, order = 12, field_file = "%s" }' % FIELD_120
             if FIELD_120.is_file() else '{ model = "gravity_field", degree = 8 }')
@@ -189,9 +196,14 @@ def _throughput(n_cases: int, tmp: Path) -> dict:
     study.cases = warm
     run_study(study, output=tmp / "warm.h5", workers=1, progress=False, plots=False)
     study.cases = cases
-    t0 = time.perf_counter()
-    rep1 = run_study(study, output=tmp / "inline.h5", workers=1, progress=False, plots=False)
-    wall1 = time.perf_counter() - t0
+    walls = []
+    rep1, wall1 = None, float("inf")
+    for i in range(INLINE_REPEATS):        # the machine is shared: the fastest run is the
+        t0 = time.perf_counter()           # least disturbed (each is a whole study, new file)
+        rep = run_study(study, output=tmp / f"inline{i}.h5", workers=1, progress=False, plots=False)
+        walls.append(time.perf_counter() - t0)
+        if walls[-1] < wall1:
+            rep1, wall1 = rep, walls[-1]
     n_pool = max(2, min(os.cpu_count() or 2, 4))
     n1 = 4 * n_pool
     study.cases = cases[:n1]
@@ -207,7 +219,7 @@ def _throughput(n_cases: int, tmp: Path) -> dict:
     # in the run-to-run spread of the fixed costs (worker start-up dominates --quick)
     dwall = wall2 - wall_small
     marginal = (len(cases) - n1) / dwall / used if dwall > 0.25 * wall2 else None
-    return {"n_cases": len(cases), "inline_wall_s": wall1, "pool_wall_s": wall2, "pool_workers": used,
+    return {"n_cases": len(cases), "inline_wall_s": wall1, "inline_walls_s": walls, "pool_wall_s": wall2, "pool_workers": used,
             "pool_small_cases": n1, "pool_small_wall_s": wall_small,
             "per_core_pool": marginal, "per_core_pool_end_to_end": len(cases) / wall2 / used,
             "breakdown": _breakdown(rep1, len(cases), wall1),
@@ -244,6 +256,7 @@ def main() -> int:
                        "cases_per_s_per_core_pool_end_to_end": tp["per_core_pool_end_to_end"],
                        "pool_workers": tp["pool_workers"], "throughput_cases": tp["n_cases"],
                        "per_case_breakdown_ms": tp["breakdown"], "pool_breakdown_ms": tp["pool_breakdown"],
+                       "cases_per_s_per_core_each_run": [tp["n_cases"] / w for w in tp["inline_walls_s"]],
                        "integrate_ms": tp["integrate_ms"], "gravity_degree": degree})
     rep.check("batch/I-O", "benchmark MEO cases complete (inline and pool)", "common practice",
               "yes" if tp["complete"] else "no", tolerance="all complete", passed=tp["complete"])
