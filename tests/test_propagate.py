@@ -153,9 +153,10 @@ def identity_pole_pole_table(epoch, t_start, t_end):
     from propagator import rotation_table as rt
     table = rt.build_pole_table(epoch, t_start, t_end).copy()
     n_nodes = int(table[rt.H_N_NODES])
-    rows = table[int(table[rt.H_HEADER_LEN]):].reshape(n_nodes, int(table[rt.H_N_FIELDS]))
+    hdr = int(table[rt.H_HEADER_LEN])
+    rows = table[hdr:hdr + n_nodes * int(table[rt.H_N_FIELDS])].reshape(n_nodes, int(table[rt.H_N_FIELDS]))
     rows[:, :] = [0.0, 0.0, 1.0]
-    return table
+    return rt.refit_pole_polynomials(table)
 
 
 def j2_energy(states):
