@@ -573,13 +573,9 @@ def _find_events(t, h, t_new, y, ynew, K, A, c, P, s, nt, deg, forces, ns, ytmp,
     for k in range(ev_int.shape[0]):
         if k == skip_k:
             continue
-        up = g_old[k] < 0.0 and g_new[k] >= 0.0
-        down = g_old[k] > 0.0 and g_new[k] <= 0.0
-        rising = up if h > 0.0 else down
-        falling = down if h > 0.0 else up
-        want = ev_int[k, EVI_DIR]
-        if not ((rising and want >= 0) or (falling and want <= 0)):
+        if not _wanted_crossing(g_old[k], g_new[k], h, ev_int[k, EVI_DIR]):
             continue
+        rising = (g_old[k] < 0.0) == (h > 0.0)      # crossing sense in physical time
         if not dense_ready:
             stats[STAT_NFEV] += _dense_prepare(t, h, y, K, A, c, P, s, nt, deg, forces, ns,
                                                ytmp, Q, acc, dadr, dadv, dadp)
@@ -904,7 +900,7 @@ def _steps(t_end, forces, A, c, b, e, e_aux, P, tab, ctl, opt, out_times, ev_int
                 stop_k = k_kink
                 t_stop = t + th_kink * h
                 stop_g = g_new[k_kink]
-                stop_d = 1 if (g_new[k_kink] > 0.0) == (h > 0.0) else -1
+                stop_d = 1 if (g_old[k_kink] < 0.0) == (h > 0.0) else -1     # as in _find_events
                 h_abs = abs(h)              # after landing: this step size (then controlled)
                 rejected_last = True
                 continue
