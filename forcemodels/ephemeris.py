@@ -286,11 +286,7 @@ def _tdb_minus_tt_sets(start_jd: float, span: float, n_sets: int) -> np.ndarray:
     k = np.arange(n_sets)[:, None]
     offs = k * span + (x[None, :] + 1.0) * 0.5 * span            # days from start_jd
     vals = erfa.dtdb(start_jd, offs, 0.0, 0.0, 0.0, 0.0)         # geocentre: u = v = 0
-    # Discrete Chebyshev transform: c_j = (2 - [j == 0]) / n sum_i f(x_i) T_j(x_i).
-    Tj = np.cos(np.outer(np.arange(n), np.pi * (np.arange(n) + 0.5) / n))   # T_j(x_i)
-    coef = vals @ Tj.T * (2.0 / n)
-    coef[:, 0] *= 0.5
-    return coef
+    return _chebyshev_fit(vals)
 
 
 def table_source(table: np.ndarray) -> str:
