@@ -23,7 +23,7 @@ from forcemodels.environment import FLAG_SUN, NEED_MOON, NEED_POLE, NEED_ROTATIO
 from propagator import table_cache
 from propagator.integrators import stepper as _st
 from propagator.integrators.settings import EventSpec, IntegratorSettings, OutputGrid
-from propagator.integrators.tableaus import Tableau, get_tableau
+from propagator.integrators.tableaus import Tableau, get_tableau, rounding_residuals
 
 ForceSpec = str | tuple[str, dict[str, Any] | pydantic.BaseModel | None]
 
@@ -151,7 +151,7 @@ _TABLEAU_ARRAYS: dict[str, tuple[np.ndarray, ...]] = {}
 
 
 def tableau_arrays(tab: Tableau) -> tuple[np.ndarray, ...]:
-    """(A, c, b, e, e_aux, P, tab_int) as the compiled loop takes them (built once per
+    """(A, c, b, b_lo, row_lo, e, e_aux, P, tab_int) as the compiled loop takes them (built once per
     method and process; the loop only reads them.  Not marked read-only: numba would
     compile a second version of the loop for read-only arrays)."""
     cached = _TABLEAU_ARRAYS.get(tab.name)
@@ -168,7 +168,8 @@ def _pack_tableau(tab: Tableau) -> tuple[np.ndarray, ...]:
     ti[_st.TAB_ERR_KIND] = tab.error_kind
     ti[_st.TAB_DENSE_DEG] = tab.P.shape[1]
     f = lambda a: np.ascontiguousarray(a, dtype=np.float64)  # noqa: E731
-    return f(tab.A), f(tab.c), f(tab.b), f(tab.e), f(tab.e_aux), f(tab.P), ti
+    b_lo, row_lo = rounding_residuals(tab)
+    return f(tab.A), f(tab.c), f(tab.b), f(b_lo), f(row_lo), f(tab.e), f(tab.e_aux), f(tab.P), ti
 
 
 def control_arrays(settings: IntegratorSettings, n_sens: int, out_mode: int) -> tuple[np.ndarray, np.ndarray]:
@@ -291,13 +292,15 @@ def propagate(epoch: Any, state0: Sequence[float] | np.ndarray,
     out_mode = _st.OUT_STEPS if out_times is None else _st.OUT_GRID
     if out_times is None:
         out_times = np.zeros(0)
-    A, c, b, e, e_aux, P, ti = tableau_arrays(tableau)
+    A, c, b, b_lo, row_lo, e, e_aux, P, ti = tableau_arrays(tableau)
+    if not settings.compensated_summation:
+        b_lo, row_lo = np.zeros_like(b_lo), np.zeros_like(row_lo)
     ctl, opt = control_arrays(settings, n_sens, out_mode)
 
     module = compose.composed()
     try:
         (status, t_last, y_last, out_t, out_y, n_out, ev_t, ev_k, ev_d, ev_y, n_ev, st) = module.integrate(
-            t0, y0, t_fin, forces_tuple, A, c, b, e, e_aux, P, ti, ctl, opt,
+            t0, y0, t_fin, forces_tuple, A, c, b, b_lo, row_lo, e, e_aux, P, ti, ctl, opt,
             np.ascontiguousarray(out_times, dtype=np.float64), ev_int, ev_par)
         message = _st.STATUS_MESSAGES.get(int(status), "unknown status")
     except ZeroDivisionError:

@@ -67,7 +67,8 @@ class IntegratorSettings(pydantic.BaseModel):
     fixed_step_s: float | None = pydantic.Field(
         None, description="fixed step [s]: error control off (convergence studies)")
     compensated_summation: bool = pydantic.Field(
-        True, description="Kahan-compensated accumulation of the state and time")
+        True, description="compensated accumulation of the state and time, with the rounding "
+                          "residuals of the method's coefficients restored (False: plain double)")
     restart_at_shadow: bool | None = pydantic.Field(
         None, description="discard the step crossing a shadow boundary (penumbra/umbra), land "
                           "on it and restart; None = when a selected model has a 'shadow' "
