@@ -151,7 +151,7 @@ _TABLEAU_ARRAYS: dict[str, tuple[np.ndarray, ...]] = {}
 
 
 def tableau_arrays(tab: Tableau) -> tuple[np.ndarray, ...]:
-    """(A, c, b, b_lo, row_lo, e, e_aux, P, tab_int) as the compiled loop takes them (built once per
+    """(A, c, b, b_lo, e, e_aux, P, tab_int) as the compiled loop takes them (built once per
     method and process; the loop only reads them.  Not marked read-only: numba would
     compile a second version of the loop for read-only arrays)."""
     cached = _TABLEAU_ARRAYS.get(tab.name)
@@ -168,8 +168,7 @@ def _pack_tableau(tab: Tableau) -> tuple[np.ndarray, ...]:
     ti[_st.TAB_ERR_KIND] = tab.error_kind
     ti[_st.TAB_DENSE_DEG] = tab.P.shape[1]
     f = lambda a: np.ascontiguousarray(a, dtype=np.float64)  # noqa: E731
-    b_lo, row_lo = rounding_residuals(tab)
-    return f(tab.A), f(tab.c), f(tab.b), f(b_lo), f(row_lo), f(tab.e), f(tab.e_aux), f(tab.P), ti
+    return f(tab.A), f(tab.c), f(tab.b), f(rounding_residuals(tab)), f(tab.e), f(tab.e_aux), f(tab.P), ti
 
 
 def control_arrays(settings: IntegratorSettings, n_sens: int, out_mode: int) -> tuple[np.ndarray, np.ndarray]:
@@ -292,15 +291,13 @@ def propagate(epoch: Any, state0: Sequence[float] | np.ndarray,
     out_mode = _st.OUT_STEPS if out_times is None else _st.OUT_GRID
     if out_times is None:
         out_times = np.zeros(0)
-    A, c, b, b_lo, row_lo, e, e_aux, P, ti = tableau_arrays(tableau)
-    if not settings.compensated_summation:
-        b_lo, row_lo = np.zeros_like(b_lo), np.zeros_like(row_lo)
+    A, c, b, b_lo, e, e_aux, P, ti = tableau_arrays(tableau)
     ctl, opt = control_arrays(settings, n_sens, out_mode)
 
     module = compose.composed()
     try:
         (status, t_last, y_last, out_t, out_y, n_out, ev_t, ev_k, ev_d, ev_y, n_ev, st) = module.integrate(
-            t0, y0, t_fin, forces_tuple, A, c, b, b_lo, row_lo, e, e_aux, P, ti, ctl, opt,
+            t0, y0, t_fin, forces_tuple, A, c, b, b_lo, e, e_aux, P, ti, ctl, opt,
             np.ascontiguousarray(out_times, dtype=np.float64), ev_int, ev_par)
         message = _st.STATUS_MESSAGES.get(int(status), "unknown status")
     except ZeroDivisionError:

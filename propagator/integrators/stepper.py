@@ -25,11 +25,11 @@ Equations I*, 2nd ed., Springer 1993, "HNW I"):
   tableau) gives states at requested times; the last step lands exactly on t_end
   (stretched by up to 1 %, as in HNW's codes);
 * compensated arithmetic of y_{n+1} = y_n + h sum b_i k_i (the sum relative to k_0,
-  the product h k_0 exact by Dekker's TwoProduct, the update by TwoSum with the low
+  the product h k_0 exact by a fused multiply-add, the update by TwoSum with the low
   parts carried as in Kahan's summation) and Kahan summation of t_{n+1} = t_n + h
   (W. Kahan, "Further remarks on reducing truncation errors", Comm. ACM 8(1), 40,
-  1965), plus the rounding residuals of the tableau's coefficients (first two order
-  conditions and the row sums restored, ``tableaus.rounding_residuals``).  Measured
+  1965), plus the rounding residual of the tableau's weights (the first two order
+  conditions restored, ``tableaus.rounding_residuals``).  Measured
   on 7-day two-body MEO (validation/bench_integrators.py): round-off floor of
   fixed-step runs 7e-7 m against 9.6e-6 m in plain double; the residuals alone remove
   a drift of ~1.2e-5 m proportional to the step (tests/test_integrators.py);
@@ -62,6 +62,7 @@ from numba import njit
 
 from forcemodels.environment import ENV_SUN
 from forcemodels.shadow import shadow_boundaries_nb
+from propagator.integrators.fma import fma
 
 
 def _hot_options():
@@ -270,6 +271,8 @@ def _combine(w, K, coef, nk, n):
         w5 = 0.0
         for j in range(nk):
             cj = coef[j]
+            if cj == 0.0:               # e.g. DOP853 weights of stages 1-4
+                continue
             w0 += cj * K[j, 0]
             w1 += cj * K[j, 1]
             w2 += cj * K[j, 2]
@@ -305,12 +308,12 @@ def _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, ns1, norm_
     if err_kind == 1:
         _combine(w3, K, e_aux, ns1, n_err)
     for i in range(n_err):
-        sc = atol[i] + rtol * max(abs(y[i]), abs(ynew[i]))
-        v5 = w5[i] / sc
+        inv_sc = 1.0 / (atol[i] + rtol * max(abs(y[i]), abs(ynew[i])))
+        v5 = w5[i] * inv_sc
         s5 += v5 * v5
         m5 = max(m5, abs(v5))
         if err_kind == 1:
-            v3 = w3[i] / sc
+            v3 = w3[i] * inv_sc
             s3 += v3 * v3
             m3 = max(m3, abs(v3))
     ah = abs(h)
@@ -326,20 +329,15 @@ def _error_norm(K, e, e_aux, err_kind, h, y, ynew, atol, rtol, n_err, ns1, norm_
 
 
 @njit(**_HOT_INLINE)
-def _stage_state(j, h, y, K, A, lam_j, ytmp, ny):
-    """ytmp = y + h (lam_j K[0] + sum_{m<j} A[j, m] K[m]) (the sum in the order m = 0, 1, ...).
-
-    lam_j: rounding residual of the row sum, c_j - sum_m A[j, m] in exact arithmetic
-    (``tableaus.rounding_residuals``; 0 for no correction).
-    """
+def _stage_state(j, h, y, K, A, ytmp, ny):
+    """ytmp = y + h sum_{m<j} A[j, m] K[m] (the sum in the order m = 0, 1, ...)."""
     if ny == 6:
-        k0 = K[0]
-        s0 = lam_j * k0[0]
-        s1 = lam_j * k0[1]
-        s2 = lam_j * k0[2]
-        s3 = lam_j * k0[3]
-        s4 = lam_j * k0[4]
-        s5 = lam_j * k0[5]
+        s0 = 0.0
+        s1 = 0.0
+        s2 = 0.0
+        s3 = 0.0
+        s4 = 0.0
+        s5 = 0.0
         for m in range(j):
             a = A[j, m]
             s0 += a * K[m, 0]
@@ -356,7 +354,7 @@ def _stage_state(j, h, y, K, A, lam_j, ytmp, ny):
         ytmp[5] = y[5] + h * s5
     else:
         for i in range(ny):
-            ytmp[i] = lam_j * K[0, i]
+            ytmp[i] = 0.0
         for m in range(j):
             a = A[j, m]
             for i in range(ny):
@@ -373,7 +371,7 @@ def _dense_prepare(t, h, y, K, A, c, P, s, nt, deg, forces, ns, ytmp, Q, acc, da
     """
     ny = y.shape[0]
     for j in range(s + 1, nt):
-        _stage_state(j, h, y, K, A, 0.0, ytmp, ny)
+        _stage_state(j, h, y, K, A, ytmp, ny)
         rhs(t + c[j] * h, ytmp, K[j], forces, ns, acc, dadr, dadv, dadp)
     for m in range(deg):
         for i in range(ny):
@@ -517,43 +515,68 @@ def _set_row(dst, row, src, n):
 
 
 @njit(**_HOT_INLINE)
-def _combine_from_first(w, K, b, b_lo, s, n):
-    """w[i] = sum_{j=1}^{s-1} (b[j] + b_lo[j]) (K[j, i] - K[0, i]), i < n.
+def _combine_from_first(w, K, b, j_lo, b_lo, s, n):
+    """w[i] = sum_{j=1}^{s-1} b[j] (K[j, i] - K[0, i]) + b_lo (K[j_lo, i] - K[0, i]), i < n.
 
     The step increment ``sum_j b_j k_j`` written as ``k_0 + sum_j b_j (k_j - k_0)``
     (exact when sum b = 1): the differences are ~h/T of the stage values, so the
     rounding of this sum is that much smaller than that of the plain weighted sum.
+    ``b_lo`` on stage ``j_lo`` (c = 1) restores sum b c = 1/2 (``tableaus.rounding_residuals``).
+    Loop order and unrolling as in :func:`_combine`.
     """
-    for i in range(n):
-        k0 = K[0, i]
-        acc = 0.0
-        acc_lo = 0.0
+    if n == 6:
+        k0 = K[0]
+        w0 = 0.0
+        w1 = 0.0
+        w2 = 0.0
+        w3 = 0.0
+        w4 = 0.0
+        w5 = 0.0
         for j in range(1, s):
-            d = K[j, i] - k0
-            acc += b[j] * d
-            acc_lo += b_lo[j] * d
-        w[i] = acc + acc_lo
-
-
-_SPLIT = 134217729.0     # 2^27 + 1, Dekker's splitting constant for IEEE double
+            bj = b[j]
+            if bj == 0.0:               # DOP853: stages 1-4 carry no weight
+                continue
+            kj = K[j]
+            w0 += bj * (kj[0] - k0[0])
+            w1 += bj * (kj[1] - k0[1])
+            w2 += bj * (kj[2] - k0[2])
+            w3 += bj * (kj[3] - k0[3])
+            w4 += bj * (kj[4] - k0[4])
+            w5 += bj * (kj[5] - k0[5])
+        kl = K[j_lo]
+        w[0] = w0 + b_lo * (kl[0] - k0[0])
+        w[1] = w1 + b_lo * (kl[1] - k0[1])
+        w[2] = w2 + b_lo * (kl[2] - k0[2])
+        w[3] = w3 + b_lo * (kl[3] - k0[3])
+        w[4] = w4 + b_lo * (kl[4] - k0[4])
+        w[5] = w5 + b_lo * (kl[5] - k0[5])
+    else:
+        for i in range(n):
+            w[i] = b_lo * (K[j_lo, i] - K[0, i])
+        for j in range(1, s):
+            bj = b[j]
+            for i in range(n):
+                w[i] += bj * (K[j, i] - K[0, i])
 
 
 @njit(**_HOT)
-def _rk_solution(t, h, y, comp, K, A, c, b, b_lo, row_lo, s, kahan, forces, ns, ytmp, ynew, compnew,
+def _rk_solution(t, h, y, comp, K, A, c, b, j_lo, b_lo, s, kahan, forces, ns, ytmp, ynew, compnew,
                  acc, dadr, dadv, dadp, w):
     """Stages 1..s-1 (stage 0 = K[0] given) and y_new = y + h sum b_j k_j.
 
-    Compensated (``kahan``): the increment is ``h k_0 + h sum_j (b_j + b_lo_j)(k_j - k_0)``
-    with the product ``h k_0`` split exactly into a double and its rounding error
-    (Dekker's TwoProduct), and the sum with y by Knuth's TwoSum, the remaining low parts
-    carried in ``comp`` (true state = y - comp) as in Kahan's summation.  T. J. Dekker,
-    "A floating-point technique for extending the available precision", Numer. Math.
-    18, 224-242, 1971; D. E. Knuth, *The Art of Computer Programming* 2, 3rd ed. 1998,
-    Sec. 4.2.2; W. Kahan, Comm. ACM 8(1), 40, 1965.
+    Compensated (``kahan``): the increment is ``h k_0 + h sum_j b_j (k_j - k_0)`` (plus
+    ``h b_lo (k_{j_lo} - k_0)``)
+    with the product ``h k_0`` split exactly into a double and its rounding error (one
+    fused multiply-add, "2MultFMA": J.-M. Muller et al., *Handbook of Floating-Point
+    Arithmetic*, 2nd ed. 2018, Sec. 4.2), and the sum with y by Knuth's TwoSum
+    (D. E. Knuth, *The Art of Computer Programming* 2, 3rd ed. 1998, Sec. 4.2.2), the
+    remaining low parts carried in ``comp`` (true state = y - comp) as in Kahan's
+    summation (W. Kahan, Comm. ACM 8(1), 40, 1965).
 
-    b_lo, row_lo: rounding residuals of the weights and of the row sums of A
-    (``tableaus.rounding_residuals``, zeros to leave them out).  With them the step
-    satisfies sum b = 1 and sum b c = 1/2 to ~1e-32 instead of ~1e-16; those residuals
+    j_lo, b_lo: the rounding residual of the weights, one weight on stage j_lo
+    (``tableaus.rounding_residuals``; 0 to leave it out).  With it the step satisfies
+    sum b = 1 (by the form k_0 + ...) and sum b c~ = 1/2 (c~: row sums of the stored A)
+    to ~1e-32 instead of ~1e-16; those residuals
     act the same way in every step, so without them the final error carries a drift
     proportional to the step size (~1.2e-5 m over 7 days of two-body MEO at 350-420 s
     steps, tests/test_integrators.py).  w: work array (>= ny).
@@ -562,7 +585,7 @@ def _rk_solution(t, h, y, comp, K, A, c, b, b_lo, row_lo, s, kahan, forces, ns, 
     """
     ny = y.shape[0]
     for j in range(1, s):
-        _stage_state(j, h, y, K, A, row_lo[j], ytmp, ny)
+        _stage_state(j, h, y, K, A, ytmp, ny)
         rhs(t + c[j] * h, ytmp, K[j], forces, ns, acc, dadr, dadv, dadp)
     if not kahan:
         _combine(ynew, K, b, s, ny)
@@ -570,27 +593,30 @@ def _rk_solution(t, h, y, comp, K, A, c, b, b_lo, row_lo, s, kahan, forces, ns, 
             ynew[i] = y[i] + h * ynew[i]
             compnew[i] = 0.0
         return
-    _combine_from_first(w, K, b, b_lo, s, ny)
-    hs = _SPLIT * h
-    h_hi = hs - (hs - h)
-    h_lo = h - h_hi
-    for i in range(ny):
-        k0 = K[0, i]
-        # p + e = h * k0 exactly (TwoProduct by splitting)
-        p = h * k0
-        ks = _SPLIT * k0
-        k_hi = ks - (ks - k0)
-        k_lo = k0 - k_hi
-        e = ((h_hi * k_hi - p) + h_hi * k_lo + h_lo * k_hi) + h_lo * k_lo
-        # sm + e1 = y + p exactly (TwoSum)
-        yi = y[i]
-        sm = yi + p
-        bb = sm - yi
-        e1 = (yi - (sm - bb)) + (p - bb)
-        lo = (e1 + (e + h * w[i])) - comp[i]
-        t2 = sm + lo
-        compnew[i] = (t2 - sm) - lo
-        ynew[i] = t2
+    _combine_from_first(w, K, b, j_lo, b_lo, s, ny)
+    if ny == 6:
+        for i in range(6):              # constant trip count: unrolled by the compiler
+            _compensated_update(i, h, y, comp, K, w, ynew, compnew)
+    else:
+        for i in range(ny):
+            _compensated_update(i, h, y, comp, K, w, ynew, compnew)
+
+
+@njit(**_HOT_INLINE)
+def _compensated_update(i, h, y, comp, K, w, ynew, compnew):
+    """ynew[i] - compnew[i] = (y[i] - comp[i]) + h K[0, i] + h w[i], the product and the
+    sum with y exact (FMA product error, TwoSum), the rest carried in compnew."""
+    k0 = K[0, i]
+    p = h * k0
+    e = fma(h, k0, -p)                  # p + e = h k0 exactly
+    yi = y[i]
+    sm = yi + p                         # sm + e1 = y + p exactly (TwoSum)
+    bb = sm - yi
+    e1 = (yi - (sm - bb)) + (p - bb)
+    lo = (e1 + (e + h * w[i])) - comp[i]
+    t2 = sm + lo
+    compnew[i] = (t2 - sm) - lo
+    ynew[i] = t2
 
 
 _RAMP_END_ERR = 0.1
@@ -707,15 +733,15 @@ RUN_GROW_EV = 2       # _steps needs a larger event buffer
 
 
 @njit(cache=True)
-def integrate(t0, y0, t_end, forces, A, c, b, b_lo, row_lo, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par):
+def integrate(t0, y0, t_end, forces, A, c, b, b_lo, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par):
     """Integrate y' = rhs(t, y) from t0 to t_end (either direction).
 
     Arguments (SI units, t in s since the case epoch):
         y0: float64[ny], ny = 6, or 6 + 36 + 6 ns with variational equations.
         forces: tuple from ``forcemodels.compose.build_forces``.
-        A, c, b, e, e_aux, P: arrays of a ``tableaus.Tableau``; b_lo, row_lo: its rounding
-            residuals (``tableaus.rounding_residuals``, zeros to leave them out);
-            tab: int64[N_TAB].
+        A, c, b, e, e_aux, P: arrays of a ``tableaus.Tableau``; b_lo: the rounding
+            residual of its weights (``tableaus.rounding_residuals``, zeros to leave it
+            out); tab: int64[N_TAB].
         ctl: float64[N_CTL] (tolerances, controller, step limits); opt: int64[N_OPT].
         out_times: sorted output times (OUT_GRID mode), in the direction of integration.
         ev_int: int64[n_ev, N_EVI] (kind, direction, terminal, restart); ev_par: float64[n_ev].
@@ -830,7 +856,7 @@ def integrate(t0, y0, t_end, forces, A, c, b, b_lo, row_lo, e, e_aux, P, tab, ct
     lsi[LSI_RAMP] = 1
     if span > 0.0:
         while True:
-            code = _steps(t_end, forces, A, c, b, b_lo, row_lo, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par,
+            code = _steps(t_end, forces, A, c, b, b_lo, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par,
                           atol, K, y, ynew, comp, compnew, ytmp, ydense, w5, w3, Q, acc, dadr, dadv, dadp,
                           sh, stats, out_t, out_y, ev_t, ev_k, ev_d, ev_y, g_old, g_new, f_t, f_k, f_d,
                           f_th, lsf, lsi)
@@ -857,7 +883,7 @@ def _rhs_call(t, y, dy, forces, ns, acc, dadr, dadv, dadp):
 
 
 @njit(**_HOT)
-def _steps(t_end, forces, A, c, b, b_lo, row_lo, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par,
+def _steps(t_end, forces, A, c, b, b_lo, e, e_aux, P, tab, ctl, opt, out_times, ev_int, ev_par,
            atol, K, y, ynew, comp, compnew, ytmp, ydense, w5, w3, Q, acc, dadr, dadv, dadp,
            sh, stats, out_t, out_y, ev_t, ev_k, ev_d, ev_y, g_old, g_new, f_t, f_k, f_d,
            f_th, lsf, lsi):
@@ -897,7 +923,12 @@ def _steps(t_end, forces, A, c, b, b_lo, row_lo, e, e_aux, P, tab, ctl, opt, out
         err_steady = safety ** (err_order + 1.0)
     n_ev = ev_int.shape[0]
     n_grid = out_times.shape[0]
-    n6 = min(ny, 6)         # position + velocity (not a literal: one compiled version of callees)
+    n6 = min(ny, 6)
+    j_lo = 1                # the one stage carrying a weight residual (see _combine_from_first)
+    for j in range(1, s):
+        if abs(b_lo[j]) > abs(b_lo[j_lo]):
+            j_lo = j
+    b_lo_val = b_lo[j_lo]         # position + velocity (not a literal: one compiled version of callees)
 
     t = lsf[LSF_T]
     tc = lsf[LSF_TC]
@@ -940,7 +971,7 @@ def _steps(t_end, forces, A, c, b, b_lo, row_lo, e, e_aux, P, tab, ctl, opt, out
             if kahan:
                 h += tc                     # the compensated time is t - tc: land on target exactly
 
-        _rk_solution(t, h, y, comp, K, A, c, b, b_lo, row_lo, s, kahan, forces, ns, ytmp, ynew, compnew,
+        _rk_solution(t, h, y, comp, K, A, c, b, j_lo, b_lo_val, s, kahan, forces, ns, ytmp, ynew, compnew,
                      acc, dadr, dadv, dadp, w3)
         skip_kink = stop_k if (clamped and stop_k >= 0) else n_ev
         if clamped:

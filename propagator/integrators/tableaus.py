@@ -462,47 +462,43 @@ def _rk54() -> Tableau:
                    error_kind=ERROR_STANDARD, P=P, dense_order=4, fsal=True)
 
 
-def rounding_residuals(tab: Tableau) -> tuple[np.ndarray, np.ndarray]:
-    """(b_lo, row_lo): what the stored (double) coefficients of ``tab`` miss, as small
-    corrections the stepping loop adds to every step.
+def rounding_residuals(tab: Tableau) -> np.ndarray:
+    """b_lo (s,): the rounding residual of the stored (double) weights of ``tab``, as a
+    small correction the stepping loop adds to every step.
 
     In double precision the weights and the rows of ``A`` carry rounding errors of
     ~1e-16 relative (up to ~2e-15 on DOP853 rows with coefficients of size 40), so the
     first two order conditions, ``sum_i b_i = 1`` and ``sum_i b_i c~_i = 1/2`` with the
-    effective nodes ``c~_i = sum_j a_ij``, hold only to that level.  The same residual
-    acts in every step; its global effect is a drift proportional to the step size (the
-    order-2 residual gives a global error of order ``eps h``), measured as ~1e-5 m after
-    7 days of two-body MEO with 450 s steps even in 80-bit arithmetic, where the
-    truncation error is 4e-6 m.  Represent each coefficient as an unevaluated sum of two
-    doubles (common practice for double-double arithmetic; e.g. T. J. Dekker, "A
-    floating-point technique for extending the available precision", Numer. Math. 18,
-    224-242, 1971) for the two conditions that matter at these step sizes:
+    effective nodes ``c~_i = sum_j a_ij`` of the stored rows, hold only to that level.
+    The same residual acts in every step; its global effect is a drift proportional to
+    the step size (the order-2 residual gives a global error of order ``eps h``),
+    measured as ~1.2e-5 m after 7 days of two-body MEO with 350-450 s steps even in
+    80-bit arithmetic, where the truncation error is 1e-6 - 4e-6 m.  The residual is
+    the low part of the weights as unevaluated sums of two doubles (common practice in
+    double-double arithmetic; T. J. Dekker, "A floating-point technique for extending
+    the available precision", Numer. Math. 18, 224-242, 1971), kept for the two
+    conditions that matter at these step sizes:
 
-    * ``row_lo[j] = c_j - sum_m A[j, m]`` in exact (rational) arithmetic of the stored
-      doubles; the loop adds ``h row_lo[j] k_0`` to stage ``j`` (``k_0`` = f at the step
-      start, so the stage's first-order node becomes exactly ``c_j``);
-    * ``b_lo``: the smallest (least-squares) correction with ``sum (b + b_lo) = 1`` and
-      ``sum (b + b_lo) c = 1/2`` exactly; the loop adds ``h sum b_lo_i k_i`` to the
-      increment before the compensated sum.
+    * ``sum b = 1`` needs no residual: the loop forms the increment as
+      ``h k_0 + h sum_j b_j (k_j - k_0)`` (``stepper._rk_solution``);
+    * ``b_lo`` is zero except on the last stage with the largest effective node
+      (``c = 1`` in all three methods), where ``b_lo c~ = 1/2 - sum_i b_i c~_i`` in exact
+      (rational) arithmetic of the stored doubles, so that ``sum (b + b_lo) c~ = 1/2``.
+      Using the stored rows' ``c~`` (not the nodes ``c``) makes this one residual cover
+      the rounding of ``A`` too: for an autonomous problem the stages see ``c~``.
 
     Higher conditions keep residuals of ~1e-16 whose global effect is of order
-    ``eps h^2`` and below (1e-8 m in the same 80-bit test at 200 s steps).
-    Only stages 0..s-1 are corrected (the dense-output stages do not propagate).
+    ``eps h^2`` and below (6e-9 m in the same 80-bit test at 200 s steps).
     """
     from fractions import Fraction
 
     s = tab.n_stages
-    c = [Fraction(float(x)) for x in tab.c[:s]]
-    row_lo = np.zeros(s)
-    for j in range(1, s):
-        row = sum((Fraction(float(a)) for a in tab.A[j, :j]), Fraction(0))
-        row_lo[j] = float(c[j] - row)
-    bf = [Fraction(float(x)) for x in tab.b]
-    r1 = 1 - sum(bf, Fraction(0))
-    r2 = Fraction(1, 2) - sum((x * y for x, y in zip(bf, c)), Fraction(0))
-    M = np.array([np.ones(s), [float(x) for x in c]])
-    b_lo = M.T @ np.linalg.solve(M @ M.T, np.array([float(r1), float(r2)]))
-    return b_lo, row_lo
+    ct = [sum((Fraction(float(a)) for a in tab.A[j, :j]), Fraction(0)) for j in range(s)]
+    r2 = Fraction(1, 2) - sum((Fraction(float(x)) * y for x, y in zip(tab.b, ct)), Fraction(0))
+    j_lo = max(range(1, s), key=lambda j: (ct[j], j))
+    b_lo = np.zeros(s)
+    b_lo[j_lo] = float(r2 / ct[j_lo])
+    return b_lo
 
 
 METHODS: dict[str, Tableau] = {t.name: t for t in (_dop853(), _rk87(), _rk54())}
