@@ -279,14 +279,22 @@ def nfev_at_error(rows: list[dict[str, Any]], error: float) -> tuple[float, str]
     return float(env_pts[-1][0]), "?"  # pragma: no cover
 
 
-def plot_equal_error(rep: Report, fits: dict[str, dict[str, Any]]) -> Path | None:
-    """Both codes' final error against evaluations at EQ_PER_DECADE tolerances per decade,
-    with the common-slope fit lines over the fit window."""
+def _pyplot():
+    """matplotlib.pyplot on the Agg backend, or None without matplotlib."""
     try:
         import matplotlib
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
     except ImportError:                   # pragma: no cover
+        return None
+    return plt
+
+
+def plot_equal_error(rep: Report, fits: dict[str, dict[str, Any]]) -> Path | None:
+    """Both codes' final error against evaluations at EQ_PER_DECADE tolerances per decade,
+    the fit window shaded."""
+    plt = _pyplot()
+    if plt is None:                       # pragma: no cover
         return None
     keys = list(fits)
     fig, axes = plt.subplots(1, len(keys), figsize=(4.2 * len(keys), 4.0), squeeze=False)
@@ -316,13 +324,10 @@ def plot_equal_error(rep: Report, fits: dict[str, dict[str, Any]]) -> Path | Non
 
 def plot_work_precision(rep: Report, rows: list[dict[str, Any]], titles: dict[str, str]) -> Path | None:
     """Final error vs evaluations and vs time, log-log, per method, with the scipy baseline."""
-    try:
-        import matplotlib
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-        import matplotlib.ticker
-    except ImportError:                   # pragma: no cover
+    plt = _pyplot()
+    if plt is None:                       # pragma: no cover
         return None
+    import matplotlib.ticker
     keys = list(titles)
     fig, axes = plt.subplots(2, len(keys), figsize=(5.5 * len(keys), 8.5), squeeze=False)
     styles = {("longarc", "dop853"): ("C0", "o-"), ("longarc", "rk87"): ("C1", "s-"),

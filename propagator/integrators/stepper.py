@@ -564,22 +564,21 @@ def _rk_solution(t, h, y, comp, K, A, c, b, j_lo, b_lo, s, kahan, forces, ns, yt
                  acc, dadr, dadv, dadp, w):
     """Stages 1..s-1 (stage 0 = K[0] given) and y_new = y + h sum b_j k_j.
 
-    Compensated (``kahan``): the increment is ``h k_0 + h sum_j b_j (k_j - k_0)`` (plus
-    ``h b_lo (k_{j_lo} - k_0)``)
-    with the product ``h k_0`` split exactly into a double and its rounding error (one
-    fused multiply-add, "2MultFMA": J.-M. Muller et al., *Handbook of Floating-Point
-    Arithmetic*, 2nd ed. 2018, Sec. 4.2), and the sum with y by Knuth's TwoSum
-    (D. E. Knuth, *The Art of Computer Programming* 2, 3rd ed. 1998, Sec. 4.2.2), the
-    remaining low parts carried in ``comp`` (true state = y - comp) as in Kahan's
-    summation (W. Kahan, Comm. ACM 8(1), 40, 1965).
+    Compensated (``kahan``): the increment is ``h k_0 + h sum_j b_j (k_j - k_0)
+    + h b_lo (k_{j_lo} - k_0)``, with the product ``h k_0`` split exactly into a double
+    and its rounding error (one fused multiply-add, "2MultFMA": J.-M. Muller et al.,
+    *Handbook of Floating-Point Arithmetic*, 2nd ed. 2018, Sec. 4.2), the sum with y by
+    Knuth's TwoSum (D. E. Knuth, *The Art of Computer Programming* 2, 3rd ed. 1998,
+    Sec. 4.2.2), and the remaining low parts carried in ``comp`` (true state = y - comp)
+    as in Kahan's summation (W. Kahan, Comm. ACM 8(1), 40, 1965).
 
     j_lo, b_lo: the rounding residual of the weights, one weight on stage j_lo
     (``tableaus.rounding_residuals``; 0 to leave it out).  With it the step satisfies
     sum b = 1 (by the form k_0 + ...) and sum b c~ = 1/2 (c~: row sums of the stored A)
-    to ~1e-32 instead of ~1e-16; those residuals
-    act the same way in every step, so without them the final error carries a drift
-    proportional to the step size (~1.2e-5 m over 7 days of two-body MEO at 350-420 s
-    steps, tests/test_integrators.py).  w: work array (>= ny).
+    to ~1e-32 instead of ~1e-16; those residuals act the same way in every step, so
+    without them the final error carries a drift proportional to the step size
+    (~1.2e-5 m over 7 days of two-body MEO at 350-420 s steps, tests/test_integrators.py).
+    w: work array (>= ny).
 
     Plain (not ``kahan``): y + h sum_j b_j k_j in ordinary floating point.
     """
@@ -923,12 +922,12 @@ def _steps(t_end, forces, A, c, b, b_lo, e, e_aux, P, tab, ctl, opt, out_times, 
         err_steady = safety ** (err_order + 1.0)
     n_ev = ev_int.shape[0]
     n_grid = out_times.shape[0]
-    n6 = min(ny, 6)
+    n6 = min(ny, 6)         # position + velocity (not a literal: one compiled version of callees)
     j_lo = 1                # the one stage carrying a weight residual (see _combine_from_first)
     for j in range(1, s):
         if abs(b_lo[j]) > abs(b_lo[j_lo]):
             j_lo = j
-    b_lo_val = b_lo[j_lo]         # position + velocity (not a literal: one compiled version of callees)
+    b_lo_val = b_lo[j_lo]
 
     t = lsf[LSF_T]
     tc = lsf[LSF_TC]
