@@ -29,10 +29,10 @@ Equations I*, 2nd ed., Springer 1993, "HNW I"):
   parts carried as in Kahan's summation) and Kahan summation of t_{n+1} = t_n + h
   (W. Kahan, "Further remarks on reducing truncation errors", Comm. ACM 8(1), 40,
   1965), plus the rounding residual of the tableau's weights (the first two order
-  conditions restored, ``tableaus.rounding_residuals``).  Measured
-  on 7-day two-body MEO (validation/bench_integrators.py): round-off floor of
-  fixed-step runs 7e-7 m against 9.6e-6 m in plain double; the residuals alone remove
-  a drift of ~1.2e-5 m proportional to the step (tests/test_integrators.py);
+  conditions restored, ``tableaus.rounding_residuals``).  Measured on 7-day two-body
+  MEO (validation/bench_integrators.py): round-off floor of fixed-step runs
+  5.6e-7 - 6.9e-7 m (two runs) against 9.6e-6 m in plain double; the residual alone
+  removes a drift of ~1.2e-5 m proportional to the step (tests/test_integrators.py);
 * events located on the dense output with Brent's method (R. P. Brent, *Algorithms
   for Minimization without Derivatives*, Prentice-Hall 1973, ch. 4; the loop follows
   the structure of scipy's ``brentq``), tolerance 1e-10 s; a "restart" event makes the
