@@ -495,7 +495,8 @@ SLOW = TINY[:TINY.index("[cases.leo-a]")].replace('name = "tiny"', 'name = "kill
 def _statuses(path: Path) -> dict[str, str]:
     try:
         with open_for_reading(path) as f:
-            return {n: str(g.attrs.get("status", "")) for n, g in f["cases"].items()}
+            # a name listed while its case is being renamed into place reads as None
+            return {n: str(g.attrs.get("status", "")) for n, g in f["cases"].items() if g is not None}
     except (OSError, KeyError, RuntimeError, ValueError):  # a write in progress
         return {}
 
