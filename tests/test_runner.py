@@ -1031,3 +1031,35 @@ def test_study_file_gets_a_fixed_metadata_cache(tmp_path):
         cfg = store.file.id.get_mdc_config()
         assert cfg.max_size == cfg.min_size == METADATA_CACHE_BYTES
         assert (cfg.incr_mode, cfg.flash_incr_mode, cfg.decr_mode) == (0, 0, 0)
+
+
+def test_stopped_pool_does_not_hang_on_a_partial_result():
+    """A pool worker killed while sending its result leaves a partial message in the result
+    pipe.  After the runner's stop path (kill, join, _release_result_pipe) the executor's
+    manager thread must end; before the fix it waited for the rest of the message forever
+    and the CLI hung at interpreter exit (about 1 SIGTERM in 10).  The partial message is
+    made here directly: a length header with no body."""
+    import struct
+    from concurrent.futures import ProcessPoolExecutor
+
+    from propagator.study.runner import _pool_context, _release_result_pipe
+
+    pool = ProcessPoolExecutor(max_workers=1, mp_context=_pool_context())
+    assert pool.submit(abs, -1).result(timeout=60) == 1        # worker and manager thread up
+    writer = pool._result_queue._writer
+    thread = pool._executor_manager_thread
+    try:
+        os.write(writer.fileno(), struct.pack("!i", 1 << 16))   # header of 64 KiB, no body
+        procs = list(pool._processes.values())
+        for proc in procs:
+            proc.kill()
+        for proc in procs:
+            proc.join(timeout=10)
+        _release_result_pipe(pool)
+        pool.shutdown(wait=False, cancel_futures=True)
+        thread.join(timeout=20)
+        assert not thread.is_alive(), "the executor's manager thread still waits on the result pipe"
+    finally:
+        if thread.is_alive() and not writer.closed:             # a regression: let this process exit
+            os.write(writer.fileno(), b"\0" * (1 << 16))
+            thread.join(timeout=20)
