@@ -290,6 +290,16 @@ def _pyplot():
     return plt
 
 
+def _save(rep: Report, plt: Any, fig: Any, title: str, name: str) -> Path:
+    """Title, layout, PNG under the report directory (110 dpi), figure closed."""
+    fig.suptitle(title)
+    fig.tight_layout()
+    path = rep.out_dir / name
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
 def plot_equal_error(rep: Report, fits: dict[str, dict[str, Any]]) -> Path | None:
     """Both codes' final error against evaluations at EQ_PER_DECADE tolerances per decade,
     the fit window shaded."""
@@ -314,12 +324,8 @@ def plot_equal_error(rep: Report, fits: dict[str, dict[str, Any]]) -> Path | Non
         ax.set_ylabel("final position error [m]")
         ax.grid(True, which="both", alpha=0.3)
         ax.legend(fontsize=8)
-    fig.suptitle("Evaluations at equal final error: rtol 1e-7 .. 10^-12.5, common-slope fit in the shaded window")
-    fig.tight_layout()
-    path = rep.out_dir / "bench_integrators_equal_error.png"
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path
+    return _save(rep, plt, fig, "Evaluations at equal final error: rtol 1e-7 .. 10^-12.5, common-slope fit "
+                 "in the shaded window", "bench_integrators_equal_error.png")
 
 
 def plot_work_precision(rep: Report, rows: list[dict[str, Any]], titles: dict[str, str]) -> Path | None:
@@ -349,12 +355,8 @@ def plot_work_precision(rep: Report, rows: list[dict[str, Any]], titles: dict[st
             axes[row, col].set_ylabel("final position error [m]")
             axes[row, col].grid(True, which="both", alpha=0.3)
             axes[row, col].legend(fontsize=8)
-    fig.suptitle("Work-precision, rtol 1e-6 .. 1e-14 (scipy rtol floored at 100 eps)")
-    fig.tight_layout()
-    path = rep.out_dir / "bench_integrators_work_precision.png"
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path
+    return _save(rep, plt, fig, "Work-precision, rtol 1e-6 .. 1e-14 (scipy rtol floored at 100 eps)",
+                 "bench_integrators_work_precision.png")
 
 
 # ---------------------------------------------------------------------------------------
